@@ -161,6 +161,7 @@ class FitResult:
     flags: list[str] = field(default_factory=list)
     n_resamples: int = 0
     seed: int | None = None
+    z_samples: list[float] = field(default_factory=list)  # bootstrap z values (for error propagation)
     systemic: dict[str, Any] | None = None  # quasar systemic-z details
     # --- data description
     medium: str = "vacuum"
