@@ -274,7 +274,11 @@ def load_linelist(name_or_path=None) -> Table:
     elif isinstance(name_or_path, (str, os.PathLike)):
         key = os.fspath(name_or_path)
         if key not in BUNDLED_LISTS and key != "default":
-            key = str(Path(key).expanduser().resolve())
+            path = Path(key).expanduser()
+            if not path.exists() and not path.suffix and len(path.parts) == 1:
+                known = ", ".join(BUNDLED_LISTS)
+                raise LineListError(key, f"neither a bundled line list ({known}) nor an existing file")
+            key = str(path.resolve())
     else:
         raise TypeError("name_or_path must be None, a list name or a path")
     return _load_cached(key).copy()

@@ -42,9 +42,11 @@ def vacuum_to_air(wave_vac):
 
 
 def air_to_vacuum(wave_air):
-    """Air wavelength(s) in Angstrom to vacuum (unchanged below 2000 Angstrom)."""
+    """Air wavelength(s) in Angstrom to vacuum (unchanged below the air image of 2000 A vacuum)."""
     a = np.asarray(wave_air, dtype=float)
-    safe = np.maximum(a, AIR_CUTOFF_A)
+    # the air image of the 2000 A vacuum cutoff, so that both directions agree at the edge
+    cut_air = AIR_CUTOFF_A / refractive_index_air(AIR_CUTOFF_A)
+    safe = np.maximum(a, cut_air)
     v = safe * refractive_index_air(safe)  # first guess
     for _ in range(4):  # Newton on f(v) = v / n(v) - a; converges to machine precision
         n = refractive_index_air(v)
@@ -53,5 +55,5 @@ def air_to_vacuum(wave_air):
         f = v / n - safe
         fp = (n - v * dn) / n**2
         v = v - f / fp
-    out = np.where(a >= AIR_CUTOFF_A, v, a)
+    out = np.where(a >= cut_air, v, a)
     return out if out.ndim else out[()]
