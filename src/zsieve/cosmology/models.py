@@ -123,6 +123,7 @@ def _from_params(params: Mapping):
     ode0 = _number(params, "Ode0")
     w0 = _number(params, "w0")
     tcmb0 = _number(params, "Tcmb0", 0.0)
+    given = {k: v for k, v in (("H0", h0), ("Om0", om0), ("Ode0", ode0), ("w0", w0)) if v is not None}
     if h0 <= 0:
         raise CosmologyError(f"H0 must be positive (km/s/Mpc), got {h0:g}")
     if om0 < 0:
@@ -145,7 +146,7 @@ def _from_params(params: Mapping):
     if bad.any():
         zbad = float(_CHECK_Z[np.argmax(bad)])
         raise CosmologyError(
-            f"inconsistent parameters (H0={h0:g}, Om0={om0:g}, Ode0={ode0}, w0={w0}): "
+            f"inconsistent parameters ({', '.join(f'{k}={v:g}' for k, v in given.items())}): "
             f"H(z)^2 <= 0 at z = {zbad:g}, i.e. no big bang in that model"
         )
     return cosmo
@@ -237,10 +238,12 @@ def cosmology_record(cosmo) -> dict:
 def describe_cosmology(cosmo) -> str:
     """One line naming a cosmology and its main parameters, for human-readable output.
 
+    ``cosmo`` is an astropy FLRW instance or a :func:`cosmology_record` dict.
+
     >>> describe_cosmology(get_cosmology({"H0": 70, "Om0": 1.0, "Ode0": 0.0}))
     'custom FlatLambdaCDM: H0 = 70 km/s/Mpc, Om0 = 1, Ode0 = 0, Ok0 = 0, w0 = -1, Tcmb0 = 0 K'
     """
-    rec = cosmology_record(cosmo)
+    rec = cosmo if isinstance(cosmo, Mapping) else cosmology_record(cosmo)
     label = rec["name"] or "custom"
     parts = [
         f"H0 = {rec['H0_kms_mpc']:g} km/s/Mpc",
