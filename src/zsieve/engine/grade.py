@@ -1,0 +1,66 @@
+"""Warning flags and the grade (secure / likely / tentative / none) from measured evidence.
+
+The evidence of an answer is:
+
+* ``probability`` — fraction of bootstrap resamples that adopt the best candidate;
+* ``n_lines`` — independent lines (fixed-ratio groups count once) measured at S/N >= 3 at
+  the adopted z;
+* ``evidence`` — the best candidate's penalised chi-square improvement over the continuum;
+* ``margin`` — its evidence minus that of the best rival at a different z;
+* flags (names are zsieve's own):
+
+  ``one-line``        the answer rests on a single line (or group), so other identities of that
+                      line fit nearly as well;
+  ``sky-overlap``     the strongest matched line sits on a bright sky line or telluric band;
+  ``at-edge``         the strongest matched line is within 20 Angstrom of the spectrum's ends;
+  ``faint``           total line S/N below 8;
+  ``xcorr-differs``   the best template correlation (r >= 6) points at another z;
+  ``close-rival``     a rival at another z keeps >= 15% of the resamples;
+  ``often-nothing``   >= 20% of resamples find no candidate at all;
+  ``noise-from-scatter`` the file had no uncertainties (noise estimated from the flux scatter).
+
+Thresholds (``GRADE_RULES``) were set by measuring on the mock benchmark
+(``tests/benchmarks/accuracy.py``): the fraction of correct answers per grade is printed there
+and quoted in the README.
+
+Examples
+--------
+>>> decide_grade(dict(probability=0.995, n_lines=4, evidence=900.0, margin=600.0), [])
+'secure'
+>>> decide_grade(dict(probability=0.995, n_lines=1, evidence=900.0, margin=600.0), ["one-line"])
+'tentative'
+>>> decide_grade(dict(probability=0.2, n_lines=0, evidence=3.0, margin=0.0), [])
+'none'
+"""
+
+from __future__ import annotations
+
+__all__ = ["FLAGS", "GRADE_RULES", "decide_grade"]
+
+FLAGS = ("one-line", "sky-overlap", "at-edge", "faint", "xcorr-differs", "close-rival",
+         "often-nothing", "noise-from-scatter")
+
+#: Minimum evidence for each grade, calibrated on the mock benchmark.
+GRADE_RULES = {
+    "secure": dict(probability=0.97, n_lines=2, evidence=80.0, margin=40.0,
+                   forbid=("one-line", "sky-overlap", "xcorr-differs", "close-rival", "often-nothing",
+                           "faint", "noise-from-scatter")),
+    "likely": dict(probability=0.85, n_lines=2, evidence=40.0, margin=15.0,
+                   forbid=("one-line", "sky-overlap", "often-nothing")),
+    "tentative": dict(probability=0.4, n_lines=1, evidence=20.0, margin=0.0, forbid=()),
+}
+
+
+def decide_grade(evidence: dict, flags) -> str:
+    """The highest grade whose every requirement the evidence meets."""
+    flags = set(flags)
+    for grade in ("secure", "likely", "tentative"):
+        rule = GRADE_RULES[grade]
+        if flags.intersection(rule["forbid"]):
+            continue
+        if (evidence.get("probability", 0.0) >= rule["probability"]
+                and evidence.get("n_lines", 0) >= rule["n_lines"]
+                and evidence.get("evidence", 0.0) >= rule["evidence"]
+                and evidence.get("margin", 0.0) >= rule["margin"]):
+            return grade
+    return "none"

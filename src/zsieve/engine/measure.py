@@ -1,0 +1,445 @@
+"""Measure the redshift of one spectrum: the whole engine in one call.
+
+``measure(spectrum, config)`` runs prepare -> detect -> identify + cross-correlate -> decide ->
+refine -> bootstrap -> grade and returns a :class:`zsieve.result.FitResult`.
+
+Decision. Every proposal (line-pattern votes, lone-line hypotheses, the top Tonry-Davis peaks
+of each template, and z = 0 for stars) is scored by the chi-square improvement of its class's
+line model (non-negative amplitudes) over the continuum alone, less ``penalty`` per line group
+used. The best few are refined by the joint line fit, re-ranked, and handed to the bootstrap,
+whose resamples decide the probability of each. Stars are searched within
+``STAR_MAX_KMS`` of zero even when ``z_min = 0`` (they are blueshifted half the time).
+
+Examples
+--------
+>>> import numpy as np
+>>> from zsieve.spectrum import Spectrum
+>>> rng = np.random.default_rng(3)
+>>> wave = np.linspace(3800.0, 9200.0, 5000)
+>>> z = 0.2
+>>> flux = np.full(wave.size, 2.0)
+>>> for lam, a in [(4862.683, 15.0), (4960.295, 10.0), (5008.24, 30.0), (6564.614, 45.0), (6585.27, 15.0)]:
+...     flux += a * np.exp(-0.5 * ((wave - lam * (1 + z)) / 2.5) ** 2)
+>>> spec = Spectrum(wave, flux + rng.normal(0, 1.0, wave.size), np.ones(wave.size))
+>>> res = measure(spec, MeasureConfig(n_resamples=50, seed=1))
+>>> res.grade, abs(res.z - z) < 1e-4, res.template
+('secure', True, 'emission-galaxy')
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import logging
+import math
+from dataclasses import dataclass, field
+from functools import lru_cache
+
+import numpy as np
+
+from ..result import Candidate, FitResult, LineMatch
+from .bootstrap import bootstrap, robust_sigma
+from .detect import detect_features
+from .grade import decide_grade
+from .identify import Seed, build_linesets, dedupe, propose
+from .prepare import C_KMS, LoglamMap, prepare, range_mask, sky_ranges
+from .quasar import systemic_summary
+from .refine import CandidateFit, LineModel, line_table, refine
+
+__all__ = ["MeasureConfig", "measure", "STAR_MAX_KMS"]
+
+log = logging.getLogger(__name__)
+
+#: Stars are searched within this velocity of zero (design: |v| < 1000 km/s).
+STAR_MAX_KMS = 1000.0
+
+
+@dataclass(frozen=True)
+class MeasureConfig:
+    """Options of :func:`measure` (all have working defaults).
+
+    Attributes
+    ----------
+    z_min, z_max : float
+        Redshift range searched (stars: always within ``STAR_MAX_KMS`` of zero).
+    classes : tuple of str
+        Object classes tried.
+    n_resamples : int
+        Bootstrap resamples (0 = formal errors only, no probabilities).
+    seed : int or None
+        Seed of the resampling (``None`` = fresh entropy).
+    snr_threshold : float
+        Matched-filter S/N for a feature to count as detected.
+    linelist : str, path or astropy Table, optional
+        Line list (default: the bundled lists).
+    mask_sky : bool
+        Mask bright night-sky lines and telluric bands.
+    sky_min_strength : float
+        Only sky lines at least this strong (0-1 scale of the sky list) are masked (and
+        telluric absorption bands at least ``max(this, 0.4)``).
+    extra_masks : tuple of (lo, hi)
+        More wavelength ranges (vacuum Angstrom) to leave out.
+    resolution_kms : float or None
+        Instrumental FWHM; ``None`` estimates it from the narrowest strong features (fallback
+        150 km/s).
+    continuum_kms : float
+        Velocity scale of the continuum blocks.
+    penalty : float
+        Chi-square charged per line group a candidate uses.
+    n_candidates : int
+        Candidates refined and carried through the bootstrap.
+    xcorr : bool
+        Use the template cross-correlation (proposals and the ``xcorr-differs`` check).
+    bootstrap_xcorr : bool
+        Also correlate every resample (agreement fraction in ``extra``; costs time).
+    """
+
+    z_min: float = 0.0
+    z_max: float = 6.0
+    classes: tuple = ("emission-galaxy", "absorption-galaxy", "quasar", "star")
+    n_resamples: int = 200
+    seed: int | None = None
+    snr_threshold: float = 4.5
+    linelist: object = None
+    mask_sky: bool = True
+    sky_min_strength: float = 0.2
+    extra_masks: tuple = ()
+    resolution_kms: float | None = None
+    continuum_kms: float = 8000.0
+    penalty: float = 6.0
+    n_candidates: int = 6
+    xcorr: bool = True
+    bootstrap_xcorr: bool = False
+
+    def replace(self, **changes) -> "MeasureConfig":
+        return dataclasses.replace(self, **changes)
+
+
+# ------------------------------------------------------------------ cached inputs
+@lru_cache(maxsize=8)
+def _linesets_cached(key, classes):
+    from ..lines import load_linelist
+
+    return build_linesets(load_linelist(key), classes)
+
+
+def _linesets(cfg: MeasureConfig):
+    ll = cfg.linelist
+    if ll is None or isinstance(ll, (str, bytes)) or hasattr(ll, "__fspath__"):
+        return _linesets_cached(None if ll is None else str(ll), tuple(cfg.classes))
+    return build_linesets(ll, tuple(cfg.classes))
+
+
+_BANKS: dict = {}
+
+
+def _bank(cfg, step, resolution_kms, rest_lo, rest_hi):
+    from .templates import build_bank
+
+    key = (None if cfg.linelist is None or not isinstance(cfg.linelist, (str, bytes)) else str(cfg.linelist),
+           tuple(cfg.classes), round(step, 9), round(resolution_kms, -1), round(rest_lo, -1), round(rest_hi, -1))
+    if cfg.linelist is not None and not isinstance(cfg.linelist, (str, bytes)):
+        return build_bank(cfg.linelist, tuple(cfg.classes), step, resolution_kms, (rest_lo, rest_hi))
+    hit = _BANKS.get(key)
+    if hit is None:
+        if len(_BANKS) > 16:
+            _BANKS.clear()
+        hit = build_bank(cfg.linelist, tuple(cfg.classes), step, resolution_kms, (rest_lo, rest_hi))
+        _BANKS[key] = hit
+    return hit
+
+
+# ------------------------------------------------------------------ helpers
+def _resolution(cfg, feats, dv_kms):
+    if cfg.resolution_kms:
+        return float(cfg.resolution_kms) / 2.3548
+    sv = [C_KMS * f.sigma_A / f.centroid for f in feats if f.snr >= 10 and f.kind == "emission"]
+    floor = 0.8 * dv_kms  # a line is never narrower than about a pixel
+    if len(sv) >= 2:
+        return float(max(floor, min(np.percentile(sv, 25), 150.0)))
+    return float(max(floor, 150.0 / 2.3548 * 0.6))
+
+
+def _z_window(seed: Seed, cfg):
+    if seed.cls == "star":
+        return STAR_MAX_KMS / C_KMS
+    return None
+
+
+def _quick_score(ls, z, prep, sig_inst, width, penalty):
+    m = LineModel(ls, prep.wave, prep.ivar, sig_inst, z, width)
+    if m.n_cols == 0:
+        return -np.inf, 0
+    a, d = m.fit_linear(prep.resid, z, width)
+    return d - penalty * int((a > 0).sum()), int((a > 0).sum())
+
+
+def _same_z(z1, z2, kms):
+    return abs(math.log1p(z1) - math.log1p(z2)) < kms / C_KMS
+
+
+def _xcorr(prep, cfg, sig_inst, fits_z_range):
+    """Row-0 correlation peaks and curves (None if the correlation layer is unavailable)."""
+    try:
+        from .correlate import correlate_batch
+        from .templates import rest_range_for
+    except ImportError:
+        log.warning("cross-correlation layer unavailable; lines only")
+        return None
+    step = float(np.clip(np.median(np.diff(prep.lnwave)), 3e-5, 5e-4))
+    lmap = LoglamMap.build(prep.lnwave, step)
+    zlo, zhi = fits_z_range
+    rlo, rhi = rest_range_for(float(prep.wave[0]), float(prep.wave[-1]), zlo, zhi)
+    try:
+        bank = _bank(cfg, step, 2.3548 * sig_inst, rlo, rhi)
+    except ValueError as exc:
+        log.info("no templates for this range: %s", exc)
+        return None
+    f, w = lmap.apply(prep.resid[None, :], prep.ivar)
+    weight = np.sqrt(w)
+    try:
+        peaks, curves = correlate_batch(f, weight, lmap.grid, bank, zlo, zhi, n_peaks=3, return_curves=True)
+    except ValueError as exc:
+        log.info("correlation failed: %s", exc)
+        return None
+    return dict(peaks=peaks[0], curves=curves, map=lmap, bank=bank)
+
+
+# ------------------------------------------------------------------ the measurement
+def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
+    """Measure the redshift of ``spectrum`` (a :class:`zsieve.spectrum.Spectrum`)."""
+    cfg = config or MeasureConfig()
+    meta = spectrum.meta
+    res = FitResult(file=str(meta.source or ""), object_name=meta.object_name, medium=meta.medium,
+                    frame=meta.frame, n_resamples=int(cfg.n_resamples), seed=cfg.seed)
+    good = ~spectrum.mask
+    if good.sum() < 50:
+        res.message = f"only {int(good.sum())} usable pixels"
+        res.flags = ["too-few-pixels"]
+        return res
+    res.wave_min = float(spectrum.wavelength[good][0])
+    res.wave_max = float(spectrum.wavelength[good][-1])
+    linesets = _linesets(cfg)
+    prep = prepare(spectrum, mask_sky=cfg.mask_sky, extra_masks=cfg.extra_masks,
+                   sky_min_strength=cfg.sky_min_strength, continuum_kms=cfg.continuum_kms)
+    ok = prep.ivar > 0
+    if ok.sum() < 50:
+        res.message = "fewer than 50 usable pixels after masking"
+        res.flags = ["too-few-pixels"]
+        return res
+    with np.errstate(divide="ignore", invalid="ignore"):
+        res.snr_median = float(np.median(np.abs(prep.flux[ok]) * np.sqrt(prep.ivar[ok])))
+    sky_win = range_mask(prep.wave, sky_ranges(0.3, 2.0, bands=False))
+    feats = detect_features(prep.wave, prep.resid, prep.ivar, prep.continuum,
+                            threshold=cfg.snr_threshold, sky=sky_win)
+    res.features = [f.to_dict() for f in feats]
+    sig_inst = _resolution(cfg, feats, prep.dv_kms)
+
+    # ---------------------------------------------------------------- proposals
+    seeds = propose(feats, linesets, cfg.z_min, cfg.z_max)
+    star_lo = -STAR_MAX_KMS / C_KMS
+    if "star" in linesets:
+        seeds.append(Seed(0.0, "star", "prior", score=0.0))
+    xc = None
+    if cfg.xcorr:
+        xc = _xcorr(prep, cfg, sig_inst, (min(cfg.z_min, star_lo), cfg.z_max))
+    if xc is not None:
+        for p in xc["peaks"]:
+            if p.template_class not in linesets:
+                continue
+            if p.template_class == "star" and abs(p.z) > STAR_MAX_KMS / C_KMS:
+                continue
+            if p.template_class != "star" and p.z < cfg.z_min:
+                continue
+            seeds.append(Seed(float(p.z), p.template_class, "xcorr", score=0.0, r_tdr=float(p.r_tdr)))
+    seeds = dedupe(seeds, tol_kms=50.0)
+
+    # ---------------------------------------------------------------- quick scores, shortlist
+    scored = []
+    for s in seeds:  # over proposals (tens)
+        ls = linesets[s.cls]
+        width = {"emission-galaxy": 60.0, "absorption-galaxy": 150.0, "quasar": 150.0, "star": 10.0}[s.cls]
+        q, nact = _quick_score(ls, s.z, prep, sig_inst, width, cfg.penalty)
+        scored.append((q, s))
+    scored.sort(key=lambda t: -t[0])
+    shortlist: list[Seed] = []
+    for q, s in scored:
+        if not np.isfinite(q):
+            continue
+        if any(o.cls == s.cls and _same_z(o.z, s.z, 150.0) for o in shortlist):
+            continue
+        shortlist.append(s)
+        if len(shortlist) >= cfg.n_candidates + 2:
+            break
+
+    # ---------------------------------------------------------------- refine
+    fits: list[tuple[CandidateFit, Seed]] = []
+    for s in shortlist:
+        ls = linesets[s.cls]
+        zt = _z_window(s, cfg)
+        z0 = s.z
+        if s.cls == "star":
+            z0 = float(np.clip(z0, star_lo, -star_lo))
+        fit = refine(ls, z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
+                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar")
+        if not fit.ok or fit.n_active == 0:
+            continue
+        if s.cls == "star" and abs(fit.z) > STAR_MAX_KMS / C_KMS * 1.0001:
+            continue
+        if s.cls != "star" and not (cfg.z_min - 1e-4 <= fit.z <= cfg.z_max):
+            continue
+        fits.append((fit, s))
+    fits.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
+    uniq: list[tuple[CandidateFit, Seed]] = []
+    for f, s in fits:
+        if any(_same_z(f.z, g.z, 300.0 if f.cls == g.cls else 100.0) for g, _ in uniq):
+            continue
+        uniq.append((f, s))
+        if len(uniq) >= cfg.n_candidates:
+            break
+    if not uniq:
+        res.message = "no line pattern or template matched"
+        res.grade = "none"
+        _attach_xcorr(res, xc)
+        return res
+
+    evid = np.array([f.dchi2 - cfg.penalty * f.n_active for f, _ in uniq])
+    score_min = GRADE_SCORE_MIN
+    # ---------------------------------------------------------------- bootstrap
+    rng = np.random.default_rng(cfg.seed)
+    fit_list = [f for f, _ in uniq]
+    if cfg.n_resamples > 0:
+        bs = bootstrap(prep, fit_list, n=int(cfg.n_resamples), rng=rng, penalty=cfg.penalty,
+                       score_min=score_min)
+        prob = bs.probability
+        p_none = bs.p_none
+        # the adopted candidate: the data's best unless the resamples clearly prefer another
+        k_best = int(np.argmax(prob)) if prob.max() > prob[0] + 0.1 else 0
+        zs = bs.z_by_fit[k_best] if k_best else bs.z
+        z_samples = zs[np.isfinite(zs)]
+    else:
+        prob = np.zeros(len(uniq))
+        prob[0] = 1.0
+        p_none = 0.0
+        k_best = 0
+        z_samples = np.zeros(0)
+    if k_best:
+        order = [k_best] + [k for k in range(len(uniq)) if k != k_best]
+        uniq = [uniq[k] for k in order]
+        prob = prob[order]
+        evid = evid[order]
+        fit_list = [f for f, _ in uniq]
+    best, best_seed = uniq[0]
+
+    # ---------------------------------------------------------------- lines, bound, systemic
+    rows = line_table(best, prep.wave, prep.resid, prep.ivar, prep.continuum, min_snr=2.0)
+    res.lines = [LineMatch(**{k: v for k, v in r.items() if k in LineMatch.__dataclass_fields__}) for r in rows]
+    from .bound import cramer_rao_sigma_z
+
+    m = best.model
+    res.z_bound = cramer_rao_sigma_z(lambda zz: best.model_flux(m.x, zz), best.z, 1.0 / np.sqrt(m.w))
+    res.z = float(best.z)
+    res.z_formal_err = float(best.z_err)
+    if z_samples.size >= 5:
+        res.z_p16, res.z_p50, res.z_p84 = (float(v) for v in np.percentile(z_samples, [15.865525, 50, 84.134475]))
+        res.z_err = robust_sigma(z_samples)
+        res.z_samples = [float(v) for v in z_samples]
+    else:
+        res.z_err = float(best.z_err)
+        res.z_p16, res.z_p50, res.z_p84 = best.z - best.z_err, best.z, best.z + best.z_err
+    res.template = best.cls
+    if best.cls == "quasar":
+        res.systemic = systemic_summary(rows, best.z, res.z_err)
+
+    # ---------------------------------------------------------------- candidates
+    cands = []
+    for (f, s), p, e in zip(uniq, prob, evid):
+        names = [f.model.ls.names[l] for l in f.active_lines]
+        cands.append(Candidate(z=float(f.z), z_err=float(f.z_err), template=f.cls, score=float(e),
+                               probability=float(p), r_tdr=_nearest_r(xc, f), n_lines=_n_independent(f, rows if f is best else None),
+                               lines=names, origin=_origin(s, xc, f)))
+    res.candidates = cands
+
+    # ---------------------------------------------------------------- flags and grade
+    flags = _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg)
+    n_ind = cands[0].n_lines
+    rival = [e for (f, _), e in zip(uniq[1:], evid[1:]) if not _same_z(f.z, best.z, 300.0)]
+    margin = float(evid[0] - max(rival)) if rival else float(evid[0])
+    evidence = dict(probability=float(prob[0]), n_lines=int(n_ind), evidence=float(evid[0]), margin=margin,
+                    p_none=float(p_none))
+    res.flags = flags
+    res.confidence = float(prob[0])
+    res.grade = decide_grade(evidence, flags)
+    res.extra["evidence"] = evidence
+    res.extra["sigma_inst_kms"] = float(sig_inst)
+    res.extra["line_width_kms"] = float(best.width_kms)
+    _attach_xcorr(res, xc)
+    res.message = f"{best.cls} at z={best.z:.5f} from {n_ind} line(s)"
+    return res
+
+
+#: Evidence below which a resample counts as "nothing found" (penalised chi-square).
+GRADE_SCORE_MIN = 20.0
+
+
+def _n_independent(fit: CandidateFit, rows) -> int:
+    ls = fit.model.ls
+    if rows is None:
+        return len({int(ls.group[l]) for l in fit.active_lines})
+    names = {r["name"] for r in rows if r["snr"] >= 3.0}
+    return len({int(ls.group[l]) for l in fit.active_lines if ls.names[l] in names})
+
+
+def _nearest_r(xc, fit):
+    if xc is None:
+        return math.nan
+    rs = [p.r_tdr for p in xc["peaks"] if p.template_class == fit.cls and _same_z(p.z, fit.z, 500.0)]
+    return float(max(rs)) if rs else math.nan
+
+
+def _origin(seed, xc, fit):
+    from_x = not math.isnan(_nearest_r(xc, fit))
+    from_l = seed.origin in ("lines", "lone")
+    if from_x and from_l:
+        return "both"
+    return "xcorr" if from_x else "lines"
+
+
+def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg):
+    flags = []
+    n_ind = len({int(best.model.ls.group[best.model.ls.names.index(r["name"])]) for r in rows if r["snr"] >= 3.0})
+    if n_ind <= 1:
+        flags.append("one-line")
+    strong = max(rows, key=lambda r: r["snr"]) if rows else None
+    if strong is not None:
+        lam = strong["observed_wavelength"]
+        if range_mask(np.array([lam]), sky_ranges(0.3, 3.0 + 2 * strong["sigma_A"], bands=False))[0]:
+            flags.append("sky-overlap")
+        if lam - prep.wave[0] < 20.0 or prep.wave[-1] - lam < 20.0:
+            flags.append("at-edge")
+    tot = math.sqrt(sum(r["snr"] ** 2 for r in rows)) if rows else 0.0
+    if tot < 8.0:
+        flags.append("faint")
+    if xc is not None and xc["peaks"]:
+        top = xc["peaks"][0]
+        if top.r_tdr >= 6.0 and not _same_z(top.z, best.z, 1500.0 if best.cls == "quasar" else 500.0):
+            flags.append("xcorr-differs")
+    rivals = [p for (f, _), p in zip(uniq[1:], prob[1:]) if not _same_z(f.z, best.z, 300.0)]
+    if rivals and max(rivals) >= 0.15:
+        flags.append("close-rival")
+    if p_none >= 0.2:
+        flags.append("often-nothing")
+    if prep.sigma_from_scatter:
+        flags.append("noise-from-scatter")
+    return flags
+
+
+def _attach_xcorr(res, xc):
+    if xc is None or not xc.get("curves"):
+        return
+    curves = xc["curves"]
+    best_cls = res.template if res.template in curves else next(iter(curves))
+    z, c = curves[best_cls]
+    res.extra["xcorr"] = {"class": best_cls, "z": [float(v) for v in np.asarray(z)],
+                          "r": [float(v) for v in np.asarray(c)]}
+    if xc["peaks"]:
+        res.extra["xcorr_peaks"] = [dict(z=p.z, r_tdr=p.r_tdr, template=p.template_class) for p in xc["peaks"][:8]]
