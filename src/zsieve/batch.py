@@ -1,0 +1,818 @@
+"""Many spectra: discovery, parallel workers, resume, and the output folder.
+
+:func:`run_batch` measures every spectrum found under some paths and writes the output folder
+described in :mod:`zsieve.report.record`:
+
+* **Discovery** (:func:`discover`) streams files from plain paths, folders (recursively, in
+  sorted order, hidden entries and the output folder itself left out) and glob patterns. Files
+  named explicitly are always tried; files found in folders or by patterns that do not look
+  like spectra (:func:`zsieve.io.is_spectrum_candidate`) get a ``skipped`` row saying so.
+* **Keys** come from each file's path relative to the common root of the arguments
+  (:func:`zsieve.report.record.make_key`), so resuming needs the same arguments. A file with
+  several spectra gives one row per spectrum (keys ``<key>``, ``<key>@1``, ``<key>@2`` ...).
+* **Workers**: ``jobs=1`` runs in this process; more uses a
+  :class:`~concurrent.futures.ProcessPoolExecutor` fed a bounded number of files at a time, so
+  memory stays flat however large the folder. Each worker reads, measures, adds frames and
+  cosmology, draws the figure and writes the JSON record itself (atomically); it sends back
+  only the small summary rows.
+* **Resume**: a record is reused when the SHA-256 of its input file and the hash of the
+  settings (engine configuration, medium option, cosmology, line lists, tool version) are
+  unchanged; ``force=True`` refits. A missing figure is drawn from the stored record without
+  refitting. The summary and index are rewritten from the records every
+  ``checkpoint_s`` seconds, at the end, and on interruption.
+* **Hand decisions** in ``DIR/decisions.log`` (:mod:`zsieve.refit.decisions`) are never
+  overwritten: a refitted record carries the decision in force in its ``hand`` field and the
+  summary shows the hand z/grade, unless ``keep_hand=False``.
+* **Failures** are isolated: an unreadable file or a fit that raises becomes a ``failed`` record
+  with a one-line message (the traceback goes to the debug log).
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import dataclasses
+import datetime as _dt
+import glob
+import hashlib
+import json
+import logging
+import os
+import sys
+import time
+import traceback
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Iterable, Iterator
+
+from .errors import SpectrumFileError, ZsieveError
+from .result import FitResult, to_jsonable
+
+__all__ = [
+    "BatchError",
+    "BatchSettings",
+    "BatchSummary",
+    "InputFile",
+    "discover",
+    "common_root",
+    "run_batch",
+    "settings_hash",
+]
+
+log = logging.getLogger(__name__)
+
+_LOCK_NAME = ".zsieve-fit.lock"
+
+
+class BatchError(ZsieveError):
+    """The batch cannot start: unusable arguments or an output folder that cannot be written."""
+
+
+# ----------------------------------------------------------------------------- discovery
+@dataclass(frozen=True)
+class InputFile:
+    """One file found by :func:`discover`."""
+
+    path: str  # as found (relative to the working directory if the argument was)
+    relpath: str  # relative to the common root: the basis of the output key
+    explicit: bool  # named on the command line (always tried) rather than found in a folder
+
+
+def _root_of(arg: str) -> str:
+    """The folder an argument's files are reckoned from (a glob's fixed leading part)."""
+    if glob.has_magic(arg):
+        fixed = []
+        for part in Path(arg).parts:
+            if glob.has_magic(part):
+                break
+            fixed.append(part)
+        return os.path.abspath(os.path.join(*fixed)) if fixed else os.path.abspath(".")
+    a = os.path.abspath(arg)
+    return a if os.path.isdir(a) else os.path.dirname(a)
+
+
+def common_root(args: Iterable[str]) -> str:
+    """The deepest folder containing every argument's files (absolute).
+
+    >>> common_root(["/data/n1/a.fits", "/data/n2", "/data/n3/*.fits"])
+    '/data'
+    """
+    roots = [_root_of(a) for a in args]
+    if not roots:
+        raise BatchError("no input paths given")
+    return os.path.commonpath(roots)
+
+
+def _hidden(name: str) -> bool:
+    return name.startswith(".")
+
+
+def discover(args: Iterable[str], *, exclude: Iterable[str] = (), root: str | None = None) -> Iterator[InputFile]:
+    """Stream the files named by ``args`` (files, folders, glob patterns), each once.
+
+    Folders are walked recursively in sorted order without following symbolic links to folders;
+    hidden files and folders and everything under ``exclude`` (the output folder) are left out.
+
+    Raises
+    ------
+    BatchError
+        If a plain path does not exist.
+    """
+    args = [os.fspath(a) for a in args]
+    root = root or common_root(args)
+    excl = [os.path.realpath(e) for e in exclude]
+    seen: set[str] = set()
+
+    def inside_excluded(real: str) -> bool:
+        return any(real == e or real.startswith(e + os.sep) for e in excl)
+
+    def emit(path: str, explicit: bool):
+        real = os.path.realpath(path)
+        if real in seen or inside_excluded(real):
+            return None
+        seen.add(real)
+        rel = os.path.relpath(os.path.abspath(path), root)
+        return InputFile(path=path, relpath=rel, explicit=explicit)
+
+    for arg in args:
+        if glob.has_magic(arg):
+            matches = sorted(glob.glob(arg, recursive=True))
+            if not matches:
+                log.warning("pattern %s matches no files", arg)
+            for m in matches:
+                if os.path.isdir(m):
+                    yield from _walk(m, emit, inside_excluded)
+                elif os.path.isfile(m) and not _hidden(os.path.basename(m)):
+                    item = emit(m, False)
+                    if item:
+                        yield item
+        elif os.path.isdir(arg):
+            yield from _walk(arg, emit, inside_excluded)
+        elif os.path.isfile(arg):
+            item = emit(arg, True)
+            if item:
+                yield item
+        elif os.path.exists(arg):
+            raise BatchError(f"{arg}: neither a file nor a folder")
+        else:
+            raise BatchError(f"{arg}: no such file or folder")
+
+
+def _walk(top: str, emit, inside_excluded) -> Iterator[InputFile]:
+    for dirpath, dirnames, filenames in os.walk(top, followlinks=False):
+        if inside_excluded(os.path.realpath(dirpath)):
+            dirnames[:] = []
+            continue
+        dirnames[:] = sorted(d for d in dirnames if not _hidden(d))
+        for name in sorted(filenames):
+            if _hidden(name):
+                continue
+            p = os.path.join(dirpath, name)
+            if os.path.isfile(p):
+                item = emit(p, False)
+                if item:
+                    yield item
+
+
+# ----------------------------------------------------------------------------- settings
+@dataclass
+class BatchSettings:
+    """What a run is asked to do (everything except the input paths and the output folder)."""
+
+    config: Any = None  # zsieve.engine.measure.MeasureConfig (None: the engine's defaults)
+    medium: str | None = None  # override of the files' wavelength medium
+    cosmology: Any = None  # anything zsieve.cosmology.get_cosmology accepts
+    jobs: int = 1
+    figures: bool = True
+    figure_format: str = "png"
+    dpi: int = 100
+    force: bool = False
+    keep_hand: bool = True
+    checkpoint_s: float = 30.0
+    progress: bool | None = None  # None: a bar only on a terminal
+    in_flight_per_job: int = 4
+
+    def config_dict(self) -> dict[str, Any]:
+        cfg = self.config
+        if cfg is None:
+            from .engine.measure import MeasureConfig
+
+            cfg = MeasureConfig()
+        return to_jsonable(dataclasses.asdict(cfg))
+
+
+def _linelist_info(config: dict[str, Any]) -> dict[str, Any]:
+    """Name, version and checksum of the line lists (and sky list) the engine will use."""
+    from .lines import catalog
+    from .report.record import file_sha256
+
+    name = config.get("linelist")
+    if name is None or name == "default":
+        paths = [catalog.bundled_path(n) for n in catalog.BUNDLED_LISTS]
+    elif name in catalog.BUNDLED_LISTS:
+        paths = [catalog.bundled_path(name)]
+    else:
+        paths = [Path(name)]
+    paths.append(catalog.bundled_path("sky"))
+    digest = hashlib.sha256()
+    for p in paths:
+        digest.update(file_sha256(p).encode())
+    version = None
+    try:
+        version = catalog.load_linelist(name).meta.get("version")
+    except Exception as exc:  # the engine will report the same problem per object
+        log.debug("line list %s not loadable: %s", name, exc)
+    return {"name": str(name or "default"), "files": [os.path.basename(str(p)) for p in paths],
+            "version": version, "sha256": digest.hexdigest()}
+
+
+def _cosmology_record(spec) -> dict[str, Any]:
+    from .cosmology import cosmology_record, get_cosmology
+
+    return cosmology_record(get_cosmology(spec))
+
+
+def settings_hash(settings: dict[str, Any]) -> str:
+    """Hash of the settings that change a fit's answer (canonical JSON, SHA-256, 16 hex digits).
+
+    >>> settings_hash({"a": 1, "b": [1, 2]}) == settings_hash({"b": [1, 2], "a": 1})
+    True
+    """
+    text = json.dumps(to_jsonable(settings), sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+@dataclass
+class _Context:
+    """What every worker needs, built once per process (picklable)."""
+
+    out_dir: str
+    config: Any
+    config_dict: dict[str, Any]
+    medium: str | None
+    cosmology: Any
+    cosmology_record: dict[str, Any]
+    linelist: dict[str, Any]
+    settings: dict[str, Any]
+    settings_hash: str
+    figures: bool
+    figure_format: str
+    dpi: int
+    tool_version: str
+
+
+# ----------------------------------------------------------------------------- one file
+def _utc() -> str:
+    return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def _one_line(exc: BaseException) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else ""
+
+
+def _provenance(ctx: _Context, item: InputFile, sha: str | None, key: str, index: int, n: int) -> dict[str, Any]:
+    return {
+        "key": key,
+        "index": index,
+        "n_spectra": n,
+        "input": item.path,
+        "path": os.path.abspath(item.path),
+        "relpath": item.relpath,
+        "input_sha256": sha,
+        "settings_hash": ctx.settings_hash,
+        "config": ctx.config_dict,
+        "medium_option": ctx.medium,
+        "cosmology_spec": ctx.cosmology_record,
+        "linelist": ctx.linelist,
+        "tool": "zsieve",
+        "tool_version": ctx.tool_version,
+        "python": sys.version.split()[0],
+        "time": _utc(),
+        "figure_format": ctx.figure_format,
+    }
+
+
+def _finish(ctx: _Context, result: FitResult, spectrum, key: str, hand: dict | None) -> dict[str, Any]:
+    """Frames, cosmology, hand decision, figure and record of one result; returns its row."""
+    from .report import complete_result, hand_cosmology
+    from .report.record import object_path, write_record
+    from .report.summary import row_from_record
+
+    if result.status == "ok":
+        result = complete_result(result, spectrum, ctx.cosmology)
+    if hand:
+        result = result.replace(hand=hand_cosmology(hand, ctx.cosmology))
+    if ctx.figures and result.status == "ok" and spectrum is not None:
+        from .report.figure import write_figure
+
+        try:
+            write_figure(object_path(ctx.out_dir, key, "." + ctx.figure_format), result, spectrum, dpi=ctx.dpi)
+        except Exception as exc:  # a figure problem must not lose the measurement
+            log.warning("%s: figure not drawn (%s: %s)", result.file, type(exc).__name__, _one_line(exc))
+            log.debug("figure traceback for %s", key, exc_info=True)
+    rec = result.to_dict()
+    write_record(ctx.out_dir, key, rec)
+    return row_from_record(rec)
+
+
+def _failure(ctx, item, sha, key, message, *, index=0, n=1, status="failed", transient=False) -> dict[str, Any]:
+    res = FitResult.failure(item.path, message, status=status)
+    prov = _provenance(ctx, item, sha, key, index, n)
+    if transient:
+        prov["transient"] = True
+    return _finish(ctx, res.replace(provenance=prov), None, key, None)
+
+
+def _fit_file(ctx: _Context, item: InputFile, sha: str, hands: dict[str, dict]) -> list[dict[str, Any]]:
+    """Read, measure and report every spectrum of one file; returns the summary rows."""
+    from .engine.measure import measure
+    from .io import read_spectra
+    from .report.record import make_key
+
+    base = make_key(item.relpath)
+    try:
+        spectra = read_spectra(item.path, medium=ctx.medium)
+    except SpectrumFileError as exc:
+        return [_failure(ctx, item, sha, base, exc.problem)]
+    except Exception as exc:  # an unexpected reader problem: isolated to this file
+        log.debug("reading %s failed", item.path, exc_info=True)
+        return [_failure(ctx, item, sha, base, f"{type(exc).__name__}: {_one_line(exc)}")]
+    if not spectra:
+        return [_failure(ctx, item, sha, base, "the file holds no spectrum")]
+    n = len(spectra)
+    rows = []
+    for i, spec in enumerate(spectra):
+        key = make_key(item.relpath, i)
+        prov = _provenance(ctx, item, sha, key, i, n)
+        try:
+            res = measure(spec, ctx.config)
+        except SpectrumFileError as exc:
+            rows.append(_failure(ctx, item, sha, key, exc.problem, index=i, n=n))
+            continue
+        except Exception as exc:
+            log.debug("fit of %s failed:\n%s", key, traceback.format_exc())
+            rows.append(_failure(ctx, item, sha, key, f"fit failed: {type(exc).__name__}: {_one_line(exc)}",
+                                 index=i, n=n))
+            continue
+        res = res.replace(file=item.path, object_name=res.object_name or spec.meta.object_name, provenance=prov)
+        rows.append(_finish(ctx, res, spec, key, hands.get(key)))
+    _remove_extra_indices(ctx.out_dir, item.relpath, n)
+    return rows
+
+
+def _remove_extra_indices(out_dir: str, relpath: str, n: int) -> None:
+    """Delete records and figures of spectrum indices a file no longer has."""
+    from .report.record import make_key, object_path
+
+    i = n
+    while True:
+        key = make_key(relpath, i)
+        paths = [object_path(out_dir, key, s) for s in (".json", ".png", ".pdf")]
+        if not any(p.exists() for p in paths):
+            break
+        for p in paths:
+            if p.exists():
+                p.unlink()
+        i += 1
+
+
+def _figure_only(ctx: _Context, item: InputFile, keys: list[str]) -> list[dict[str, Any]]:
+    """Draw missing figures of reused records (the spectrum is read again, not refitted)."""
+    from .io import read_spectra
+    from .report.figure import write_figure
+    from .report.record import object_path, read_record
+    from .report.summary import row_from_record
+
+    rows = []
+    spectra = None
+    for key in keys:
+        rec = read_record(object_path(ctx.out_dir, key, ".json"))
+        if rec is None:
+            continue
+        res = FitResult.from_dict(rec)
+        if res.status == "ok":
+            try:
+                if spectra is None:
+                    spectra = read_spectra(item.path, medium=ctx.medium)
+                idx = int((res.provenance or {}).get("index") or 0)
+                write_figure(object_path(ctx.out_dir, key, "." + ctx.figure_format), res, spectra[idx], dpi=ctx.dpi)
+            except Exception as exc:
+                log.warning("%s: figure not drawn (%s: %s)", item.path, type(exc).__name__, _one_line(exc))
+        rows.append(row_from_record(rec))
+    return rows
+
+
+# -------------------------------------------------------------------- worker processes
+_CTX: _Context | None = None
+
+
+def _init_worker(ctx: _Context, level: int) -> None:
+    global _CTX
+    _CTX = ctx
+    logging.getLogger("zsieve").setLevel(level)
+    os.environ.setdefault("MPLBACKEND", "Agg")
+
+
+def _run_task(task: tuple) -> list[dict[str, Any]]:
+    kind, item, sha, extra = task
+    ctx = _CTX
+    assert ctx is not None, "worker not initialised"
+    if kind == "fit":
+        return _fit_file(ctx, item, sha, extra)
+    return _figure_only(ctx, item, extra)
+
+
+# ----------------------------------------------------------------------------- the run
+@dataclass
+class BatchSummary:
+    """What a run did, for the closing line."""
+
+    out_dir: str
+    counts: dict[str, int] = field(default_factory=dict)
+    n_files: int = 0
+    n_fitted_now: int = 0
+    n_reused: int = 0
+    elapsed_s: float = 0.0
+    interrupted: bool = False
+    rows: int = 0
+
+    def line(self) -> str:
+        c = self.counts
+        text = (f"{c.get('fitted', 0)} fitted ({c.get('secure', 0)} secure, {c.get('likely', 0)} likely, "
+                f"{c.get('tentative', 0)} tentative, {c.get('none', 0)} none), {c.get('failed', 0)} failed, "
+                f"{c.get('skipped', 0)} skipped; {self.n_fitted_now} measured now, {self.n_reused} reused "
+                f"in {self.elapsed_s:.1f} s; outputs in {self.out_dir}")
+        return ("interrupted: " + text) if self.interrupted else text
+
+
+class _Lock:
+    """An exclusive lock on the output folder for the length of a run (flock, released on exit)."""
+
+    def __init__(self, out_dir: Path):
+        self.path = out_dir / _LOCK_NAME
+        self.fd = None
+
+    def __enter__(self):
+        import fcntl
+
+        self.fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            fcntl.flock(self.fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError:
+            os.close(self.fd)
+            raise BatchError(f"{self.path.parent}: another zsieve fit is writing this folder") from None
+        return self
+
+    def __exit__(self, *exc):
+        os.close(self.fd)
+        return False
+
+
+def _prepare_out_dir(out_dir: Path) -> None:
+    from .report.atomic import remove_stale_parts, write_atomic
+    from .report.record import OBJECTS
+
+    try:
+        (out_dir / OBJECTS).mkdir(parents=True, exist_ok=True)
+        write_atomic(out_dir / _LOCK_NAME, "")
+    except OSError as exc:
+        raise BatchError(f"{out_dir}: output folder cannot be written ({exc.strerror or exc})") from None
+    remove_stale_parts(out_dir)
+    remove_stale_parts(out_dir / OBJECTS)
+
+
+def _existing(out_dir: Path) -> tuple[dict[str, dict], dict[str, dict]]:
+    """Rows and resume facts of the records already in the folder."""
+    from .report.record import iter_records
+    from .report.summary import row_from_record
+
+    rows: dict[str, dict] = {}
+    facts: dict[str, dict] = {}
+    for key, rec in iter_records(out_dir):
+        prov = rec.get("provenance") or {}
+        rows[key] = row_from_record(rec)
+        facts[key] = {
+            "sha": prov.get("input_sha256"),
+            "settings": prov.get("settings_hash"),
+            "n": int(prov.get("n_spectra") or 1),
+            "status": rec.get("status"),
+            "transient": bool(prov.get("transient")),
+            "hand": rec.get("hand"),
+            "path": prov.get("path"),
+            "index": int(prov.get("index") or 0),
+        }
+    return rows, facts
+
+
+def _same_decision(a: dict | None, b: dict | None) -> bool:
+    if not a and not b:
+        return True
+    if not a or not b:
+        return False
+    return all(a.get(k) == b.get(k) for k in ("time", "action", "z", "grade", "user"))
+
+
+def _is_candidate(path: str) -> tuple[bool, str]:
+    from .io import is_spectrum_candidate
+
+    try:
+        ok = bool(is_spectrum_candidate(path))
+    except OSError as exc:
+        return False, f"not readable ({exc.strerror or exc})"
+    return ok, "" if ok else "not a spectrum file (format not recognised from its name or first bytes)"
+
+
+def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchSettings | None = None,
+              *, on_row: Callable[[dict], None] | None = None) -> BatchSummary:
+    """Measure every spectrum under ``paths`` into ``out_dir``; see the module description.
+
+    Raises
+    ------
+    BatchError
+        For unusable arguments (a path that does not exist, nothing found) or an output folder
+        that cannot be written. Problems with single files never raise.
+    """
+    from . import __version__
+    from .report.atomic import write_atomic
+    from .report.index import write_index
+    from .report.record import make_key, object_path
+    from .report.summary import tally, write_summary
+
+    settings = settings or BatchSettings()
+    t0 = time.perf_counter()
+    paths = [os.fspath(p) for p in paths]
+    if not paths:
+        raise BatchError("no input paths given")
+    out_dir = Path(out_dir).absolute()
+    if out_dir.exists() and not out_dir.is_dir():
+        raise BatchError(f"{out_dir}: exists and is not a folder")
+    root = common_root(paths)
+    for p in paths:  # fail on a missing plain path before anything is written
+        if not glob.has_magic(p) and not os.path.exists(p):
+            raise BatchError(f"{p}: no such file or folder")
+
+    config_dict = settings.config_dict()
+    if settings.config is None:
+        from .engine.measure import MeasureConfig
+
+        settings = dataclasses.replace(settings, config=MeasureConfig())
+    try:
+        cosmo_rec = _cosmology_record(settings.cosmology)
+    except Exception as exc:
+        raise BatchError(f"cosmology: {_one_line(exc)}") from None
+    try:
+        linelist = _linelist_info(config_dict)
+    except Exception as exc:
+        raise BatchError(f"line list: {_one_line(exc)}") from None
+    answer_settings = {
+        "config": config_dict,
+        "medium": settings.medium,
+        "cosmology": cosmo_rec,
+        "linelist": linelist["sha256"],
+        "tool_version": __version__,
+    }
+    shash = settings_hash(answer_settings)
+    ctx = _Context(
+        out_dir=str(out_dir), config=settings.config, config_dict=config_dict, medium=settings.medium,
+        cosmology=settings.cosmology, cosmology_record=cosmo_rec, linelist=linelist, settings=answer_settings,
+        settings_hash=shash, figures=settings.figures, figure_format=settings.figure_format, dpi=settings.dpi,
+        tool_version=__version__,
+    )
+    meta = {
+        "tool": "zsieve",
+        "tool_version": __version__,
+        "settings": answer_settings,
+        "settings_hash": shash,
+        "linelist": linelist,
+        "inputs": paths,
+        "root": root,
+        "cosmology": cosmo_rec,
+    }
+
+    _prepare_out_dir(out_dir)
+    with _Lock(out_dir):
+        try:
+            write_atomic(out_dir / "run.json", json.dumps(to_jsonable({**meta, "started": _utc()}), indent=1))
+        except OSError as exc:
+            raise BatchError(f"{out_dir}: output folder cannot be written ({exc.strerror or exc})") from None
+        rows, facts = _existing(out_dir)
+        hands: dict[str, dict] = {}
+        if settings.keep_hand:
+            from .refit.decisions import in_force, read_decisions
+
+            hands = in_force(read_decisions(out_dir))
+
+        summary = BatchSummary(out_dir=str(out_dir))
+        touched: set[str] = set()
+        last_checkpoint = [time.monotonic()]
+
+        def checkpoint(final: bool = False):
+            write_summary(out_dir, rows.values(), meta)
+            write_index(out_dir, rows.values())
+            last_checkpoint[0] = time.monotonic()
+            if not final:
+                log.info("checkpoint: %d rows in %s", len(rows), out_dir)
+
+        def take(new_rows: list[dict]):
+            for r in new_rows:
+                rows[r["key"]] = r
+                touched.add(r["key"])
+                if on_row:
+                    on_row(r)
+            if time.monotonic() - last_checkpoint[0] > settings.checkpoint_s:
+                checkpoint()
+
+        def tasks() -> Iterator[tuple]:
+            """Decide per file: reuse, skip, draw figures only, or fit (streamed)."""
+            for item in discover(paths, exclude=[str(out_dir)], root=root):
+                summary.n_files += 1
+                base = make_key(item.relpath)
+                if not item.explicit:
+                    ok, why = _is_candidate(item.path)
+                    if not ok:
+                        f = facts.get(base)
+                        if f and f["status"] == "skipped" and not settings.force and rows[base]["message"] == why:
+                            touched.add(base)
+                        else:
+                            take([_failure(ctx, item, None, base, why, status="skipped")])
+                        yield None
+                        continue
+                try:
+                    from .report.record import file_sha256
+
+                    sha = file_sha256(item.path)
+                except OSError as exc:
+                    take([_failure(ctx, item, None, base, f"not readable ({exc.strerror or exc})")])
+                    yield None
+                    continue
+                f = facts.get(base)
+                if f and not settings.force and not f["transient"] and f["sha"] == sha and f["settings"] == shash:
+                    keys = [base] + [make_key(item.relpath, i) for i in range(1, f["n"])]
+                    if all(k in facts for k in keys):
+                        if settings.keep_hand and any(not _same_decision(facts[k]["hand"], hands.get(k)) for k in keys):
+                            take(_update_hands(ctx, keys, hands))
+                        need_fig = [k for k in keys if settings.figures and facts[k]["status"] == "ok"
+                                    and not object_path(out_dir, k, "." + settings.figure_format).exists()]
+                        touched.update(keys)
+                        summary.n_reused += len(keys)
+                        if need_fig:
+                            yield ("figure", item, sha, need_fig)
+                        else:
+                            yield None
+                        continue
+                summary.n_fitted_now += 1
+                yield ("fit", item, sha, {k: v for k, v in hands.items() if k.split("@")[0] == base})
+
+        bar = _progress_bar(settings.progress, lambda: sum(1 for _ in discover(paths, exclude=[str(out_dir)], root=root)))
+        try:
+            if settings.jobs <= 1:
+                _init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel())
+                for task in tasks():
+                    if task is not None:
+                        take(_run_task(task))
+                    bar.update(1)
+            else:
+                _run_pool(ctx, settings, tasks(), take, bar)
+        except KeyboardInterrupt:
+            summary.interrupted = True
+            log.warning("interrupted: writing the summary of the records made so far")
+        finally:
+            bar.close()
+            _drop_superseded(out_dir, rows, facts, touched)
+            checkpoint(final=True)
+        summary.counts = tally(rows.values())
+        summary.rows = len(rows)
+        summary.elapsed_s = time.perf_counter() - t0
+        if summary.n_files == 0 and not summary.interrupted:
+            raise BatchError("no input files found in " + ", ".join(paths))
+        return summary
+
+
+def _update_hands(ctx: _Context, keys: list[str], hands: dict[str, dict]) -> list[dict]:
+    """Apply the decisions in force to reused records (the refit session appended new ones)."""
+    from .report import hand_cosmology
+    from .report.record import object_path, read_record, write_record
+    from .report.summary import row_from_record
+
+    out = []
+    for k in keys:
+        rec = read_record(object_path(ctx.out_dir, k, ".json"))
+        if rec is None:
+            continue
+        hand = rec.get("hand")
+        if isinstance(hand, dict) and "auto" in hand and hands.get(k) and _same_decision(hand, hands[k]):
+            continue
+        rec["hand"] = to_jsonable(hand_cosmology(hands.get(k), ctx.cosmology)) if hands.get(k) else None
+        write_record(ctx.out_dir, k, rec)
+        out.append(row_from_record(rec))
+    return out
+
+
+def _drop_superseded(out_dir: Path, rows: dict, facts: dict, touched: set[str]) -> None:
+    """Remove records of the same input spectrum made under another key (another root)."""
+    from .report.record import object_path
+
+    by_source: dict[tuple, list[str]] = {}
+    for k, f in facts.items():
+        if f.get("path"):
+            by_source.setdefault((f["path"], f["index"]), []).append(k)
+    now = {}
+    for k in touched:
+        r = rows.get(k)
+        if r is not None:
+            now[(os.path.abspath(r["file"]), r["index"])] = k
+    for src, keys in by_source.items():
+        if src not in now:
+            continue
+        for k in keys:
+            if k != now[src] and k not in touched:
+                log.info("record %s is superseded by %s (same input); removed", k, now[src])
+                for s in (".json", ".png", ".pdf"):
+                    p = object_path(out_dir, k, s)
+                    if p.exists():
+                        p.unlink()
+                rows.pop(k, None)
+
+
+class _NoBar:
+    def update(self, n=1):
+        pass
+
+    def close(self):
+        pass
+
+
+def _progress_bar(progress: bool | None, count: Callable[[], int]):
+    """tqdm on a terminal (rate and ETA over a quick count of the files), else nothing."""
+    show = sys.stderr.isatty() if progress is None else progress
+    if not show:
+        return _NoBar()
+    from tqdm import tqdm
+
+    return tqdm(total=count(), unit="file", desc="zsieve fit", dynamic_ncols=True, smoothing=0.1)
+
+
+def _run_pool(ctx: _Context, settings: BatchSettings, tasks: Iterator, take, bar) -> None:
+    """Feed tasks to worker processes, at most ``jobs * in_flight_per_job`` at a time.
+
+    If a worker process dies (killed, out of memory), the files in flight become ``failed``
+    records marked transient (retried by the next run) and a fresh pool carries on.
+    """
+    limit = max(1, settings.jobs * settings.in_flight_per_job)
+    level = logging.getLogger("zsieve").getEffectiveLevel()
+
+    def new_pool():
+        return cf.ProcessPoolExecutor(max_workers=settings.jobs, initializer=_init_worker, initargs=(ctx, level))
+
+    pool = new_pool()
+    pending: dict[cf.Future, tuple] = {}
+
+    def drain(until: int):
+        nonlocal pool
+        while len(pending) > until:
+            done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
+            broken = False
+            for fut in done:
+                broken |= _collect(ctx, fut, pending.pop(fut), take)
+                bar.update(1)
+            if broken:  # every file in flight shares the dead pool's fate; the next run retries them
+                for fut, task in list(pending.items()):
+                    pending.pop(fut)
+                    _collect(ctx, fut, task, take)
+                    bar.update(1)
+                pool.shutdown(wait=False, cancel_futures=True)
+                pool = new_pool()
+
+    try:
+        for task in tasks:
+            if task is None:
+                bar.update(1)
+                continue
+            pending[pool.submit(_run_task, task)] = task
+            drain(limit - 1)
+        drain(0)
+    except BaseException:
+        pool.shutdown(wait=False, cancel_futures=True)
+        raise
+    else:
+        pool.shutdown(wait=True)
+
+
+def _collect(ctx: _Context, fut: cf.Future, task: tuple, take) -> bool:
+    """Take a finished task's rows; returns True if the pool broke (a worker died)."""
+    from .report.record import make_key
+
+    kind, item, sha, _ = task
+    try:
+        take(fut.result())
+        return False
+    except cf.process.BrokenProcessPool:
+        log.warning("%s: a worker process died while measuring it; marked failed (retried next run)", item.path)
+        take([_failure(ctx, item, sha, make_key(item.relpath), "worker process died while measuring this file",
+                       transient=True)])
+        return True
+    except Exception as exc:  # the worker itself failed (e.g. unpicklable result): isolate the file
+        log.debug("task for %s failed", item.path, exc_info=True)
+        take([_failure(ctx, item, sha, make_key(item.relpath), f"{type(exc).__name__}: {_one_line(exc)}",
+                       transient=True)])
+        return False
