@@ -97,9 +97,11 @@ def offline_earth_orientation():
     """Context in which astropy never downloads Earth-orientation or any other data.
 
     Inside it ``astropy.utils.iers.conf.auto_download`` and
-    ``astropy.utils.data.conf.allow_internet`` are False and
-    ``iers_degraded_accuracy`` is ``"warn"``: the bundled IERS tables are used, and a time
-    beyond them warns instead of failing. The previous settings come back on exit.
+    ``astropy.utils.data.conf.allow_internet`` are False, ``auto_max_age`` is None (old
+    predictions are accepted rather than refreshed) and ``iers_degraded_accuracy`` is
+    ``"warn"``: the bundled IERS tables are used, and a time beyond them warns instead of
+    failing (Earth-rotation angle errors of a fraction of a second of time change the
+    correction by well under 1 m/s). The previous settings come back on exit.
 
     >>> from astropy.utils import iers
     >>> with offline_earth_orientation():
@@ -112,6 +114,7 @@ def offline_earth_orientation():
     with (
         iers.conf.set_temp("auto_download", False),
         iers.conf.set_temp("iers_degraded_accuracy", "warn"),
+        iers.conf.set_temp("auto_max_age", None),
         data_conf.set_temp("allow_internet", False),
     ):
         yield
@@ -219,8 +222,8 @@ def velocity_correction_kms(ra_deg, dec_deg, mjd, location=None, kind: str = "ba
     with offline_earth_orientation(), warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         vs = [coord.radial_velocity_correction(kind=kind, obstime=t, location=s) for s in sites]
-    for w in caught:
-        log.warning("radial velocity correction: %s", w.message)
+    for message in dict.fromkeys(str(w.message) for w in caught):
+        log.warning("radial velocity correction: %s", message)
     out = np.mean([v.to_value(u.km / u.s) for v in vs], axis=0)
     return float(out) if np.ndim(out) == 0 else np.asarray(out)
 
