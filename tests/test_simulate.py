@@ -228,3 +228,11 @@ def test_bad_arguments():
         mock_spectrum("star", 0.0, 5.0, rng, medium="water")
     with pytest.raises(ValueError, match="grid"):
         mock_spectrum("single-line", 3.0, 5.0, rng, line="H-alpha")
+
+
+def test_linear_grid_option():
+    spec, truth = mock_spectrum("quasar", 2.2, 10.0, np.random.default_rng(12), dlambda=2.0, sky=False)
+    np.testing.assert_allclose(np.diff(spec.wavelength), 2.0, rtol=1e-9)
+    assert truth["dlambda"] == 2.0 and truth["dlog10"] is None
+    expect = 1549.06 * 3.2 * (1 + [d for d in truth["lines"] if d["name"] == "C IV 1549"][0]["offset_kms"] / C_KMS)
+    assert abs(_peak_near(spec.wavelength, truth["model"], expect, half=40.0) - expect) < 3.0

@@ -411,7 +411,7 @@ def _single_line(rng, resolution, wave_lo, wave_hi, z, line):
 
 
 # ----------------------------------------------------------------------- sky and forest
-def _forest_transmission(rng, wave, z, dlog10):
+def _forest_transmission(rng, wave, z):
     """Ly-alpha forest (and a Lyman-limit drop) in the observed frame; 1 redward of Ly-alpha."""
     trans = np.ones_like(wave)
     lya_obs = _LYA * (1.0 + z)
@@ -421,7 +421,7 @@ def _forest_transmission(rng, wave, z, dlog10):
     z_abs = wave / _LYA - 1.0
     # absorbers: Poisson per pixel, optical depths from a power law, Doppler b ~ 20-40 km/s
     n_pix = wave.size
-    dv_pix = C_KMS * math.log(10.0) * dlog10
+    dv_pix = C_KMS * float(np.median(np.diff(np.log(wave)))) if n_pix > 1 else 69.0
     density = 0.8 * (dv_pix / 69.0)  # mean absorbers per pixel
     counts = rng.poisson(density, n_pix) * region
     tau0 = np.zeros(n_pix)
@@ -495,6 +495,7 @@ def mock_spectrum(
     wave_range=(3600.0, 9800.0),
     resolution: float = 2000.0,
     dlog10: float = 1e-4,
+    dlambda: float | None = None,
     medium: str = "vacuum",
     sky: bool = True,
     sky_level: float = 3.0,
@@ -524,6 +525,8 @@ def mock_spectrum(
         Resolving power R = lambda / FWHM of the line-spread function.
     dlog10 : float
         Pixel size in log10 wavelength (1e-4 = 69 km/s, as in SDSS).
+    dlambda : float, optional
+        If given, a grid uniform in wavelength with this step (Angstrom) instead.
     medium : {'vacuum', 'air'}
         Medium in which the pixel grid is uniform (see the module docstring).
     sky : bool
@@ -561,7 +564,12 @@ def mock_spectrum(
         raise ValueError(f"snr must be finite and >= 0 (got {snr})")
     if not isinstance(rng, np.random.Generator):
         rng = np.random.default_rng(rng)
-    grid = log_grid(wave_range, dlog10)
+    if dlambda is not None:
+        if not dlambda > 0:
+            raise ValueError(f"dlambda must be > 0 (got {dlambda})")
+        grid = np.arange(float(wave_range[0]), float(wave_range[1]) + 1e-9 * dlambda, float(dlambda))
+    else:
+        grid = log_grid(wave_range, dlog10)
     wave = np.asarray(air_to_vacuum(grid), dtype=float) if medium == "air" else grid
     edges = pixel_edges(wave)
     z = float("nan") if kind == "noise" else float(z)
@@ -576,7 +584,7 @@ def mock_spectrum(
         continuum, ln, params = _star(rng, resolution, linelist)
     elif kind == "quasar":
         continuum, ln, params = _quasar(rng, resolution, linelist)
-        forest, mean_t = _forest_transmission(rng, wave, z, dlog10)
+        forest, mean_t = _forest_transmission(rng, wave, z)
         trans = trans * forest
         params["forest_mean_transmission"] = mean_t
     elif kind == "single-line":
@@ -659,7 +667,8 @@ def mock_spectrum(
     truth = dict(
         z=z, kind=kind, snr=float(snr), z_bound=float(z_bound), sigma0=float(sigma0),
         lines=line_log, params=params, sky_spikes=spike_log, medium=medium,
-        resolution=float(resolution), dlog10=float(dlog10), model=base, sigma_base=sigma_base,
+        resolution=float(resolution), dlog10=None if dlambda is not None else float(dlog10),
+        dlambda=None if dlambda is None else float(dlambda), model=base, sigma_base=sigma_base,
     )
     log.debug("mock %s z=%s snr=%.3g: z_bound=%.3g", kind, z, snr, z_bound)
     return spec, truth
