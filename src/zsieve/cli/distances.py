@@ -16,7 +16,6 @@ from __future__ import annotations
 import argparse
 import json
 import logging
-import math
 import sys
 
 __all__ = ["register", "run"]
@@ -60,18 +59,14 @@ def register(subparsers) -> argparse.ArgumentParser:
     return p
 
 
+def _float(text: str, what: str) -> float:
+    from ..cosmology.models import finite_number
+
+    return finite_number(text, what, error=_ArgError)
+
+
 class _ArgError(Exception):
     pass
-
-
-def _float(text: str, what: str) -> float:
-    try:
-        value = float(text)
-    except (TypeError, ValueError):
-        raise _ArgError(f"{what} must be a number, got {text!r}") from None
-    if not math.isfinite(value):
-        raise _ArgError(f"{what} must be finite, got {text!r}")
-    return value
 
 
 def _int(text: str, what: str, minimum: int) -> int:

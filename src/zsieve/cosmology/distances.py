@@ -37,7 +37,7 @@ import math
 
 import numpy as np
 
-from .models import CosmologyError, cosmology_record, get_cosmology
+from .models import CosmologyError, cosmology_record, finite_number, get_cosmology
 from .uncertainty import GRID_THRESHOLD, draw_z_samples, interpolate_on_grid, summarise
 from .velocities import (
     C_KMS,
@@ -109,12 +109,7 @@ def check_redshift(z) -> float:
     ...
     zsieve.cosmology.models.CosmologyError: redshift must be > -1 (1+z is a ratio of wavelengths), got -1
     """
-    try:
-        value = float(z)
-    except (TypeError, ValueError):
-        raise CosmologyError(f"redshift must be a number, got {z!r}") from None
-    if not math.isfinite(value):
-        raise CosmologyError(f"redshift must be finite, got {z!r}")
+    value = finite_number(z, "redshift")
     if value <= -1.0:
         raise CosmologyError(f"redshift must be > -1 (1+z is a ratio of wavelengths), got {z!r}")
     return value
@@ -293,12 +288,7 @@ def describe(z, *, z_err=None, z_samples=None, cosmology=None, n_samples: int = 
         if z_err is not None:
             notes.append("Both z samples and z_err were given; the samples were used.")
     elif z_err is not None:
-        try:
-            sigma = float(z_err)
-        except (TypeError, ValueError):
-            raise CosmologyError(f"z uncertainty must be a number, got {z_err!r}") from None
-        if not (math.isfinite(sigma) and sigma >= 0):
-            raise CosmologyError(f"z uncertainty must be finite and >= 0, got {z_err!r}")
+        sigma = finite_number(z_err, "z uncertainty", lo=0.0)
         samples = draw_z_samples(z, sigma, int(n_samples), seed=seed)
         method = "gaussian"
 

@@ -51,6 +51,7 @@ import warnings
 
 import numpy as np
 
+from .models import finite_number
 from .velocities import C_KMS, doppler_redshift
 
 __all__ = [
@@ -120,16 +121,6 @@ def offline_earth_orientation():
         yield
 
 
-def _finite(value, name: str, lo: float = -math.inf, hi: float = math.inf) -> float:
-    try:
-        out = float(value)
-    except (TypeError, ValueError):
-        raise ValueError(f"{name} must be a number, got {value!r}") from None
-    if not (math.isfinite(out) and lo <= out <= hi):
-        raise ValueError(f"{name} must be finite and within [{lo:g}, {hi:g}], got {value!r}")
-    return out
-
-
 def site_location(meta=None, site=None):
     """The observatory as an :class:`~astropy.coordinates.EarthLocation`, or ``None``.
 
@@ -171,9 +162,9 @@ def site_location(meta=None, site=None):
         height = meta.site_height_m if meta.site_height_m is not None else 0.0
     if lon is None or lat is None:
         return None
-    lon = _finite(lon, "site longitude", -360.0, 360.0)
-    lat = _finite(lat, "site latitude", -90.0, 90.0)
-    height = _finite(height if height is not None else 0.0, "site height", -1.2e4, 1e5)
+    lon = finite_number(lon, "site longitude", lo=-360.0, hi=360.0, error=ValueError)
+    lat = finite_number(lat, "site latitude", lo=-90.0, hi=90.0, error=ValueError)
+    height = finite_number(height if height is not None else 0.0, "site height", lo=-1.2e4, hi=1e5, error=ValueError)
     return EarthLocation.from_geodetic(lon * u.deg, lat * u.deg, height * u.m)
 
 
@@ -347,8 +338,8 @@ def frame_info(meta, z, *, peculiar_kms=None, frame=None, site=None) -> dict:
     mjd = getattr(meta, "mjd", None)
     have_pos = ra is not None and dec is not None
     if have_pos:
-        ra = _finite(ra, "RA", -360.0, 360.0)
-        dec = _finite(dec, "Dec", -90.0, 90.0)
+        ra = finite_number(ra, "RA", lo=-360.0, hi=360.0, error=ValueError)
+        dec = finite_number(dec, "Dec", lo=-90.0, hi=90.0, error=ValueError)
     have_time = mjd is not None and math.isfinite(float(mjd))
 
     out = {

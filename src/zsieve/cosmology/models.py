@@ -49,7 +49,7 @@ import numpy as np
 from ..errors import ZsieveError
 
 __all__ = ["CosmologyError", "DEFAULT_COSMOLOGY", "get_cosmology", "cosmology_record", "describe_cosmology",
-           "available_names"]
+           "available_names", "finite_number"]
 
 log = logging.getLogger(__name__)
 
@@ -66,6 +66,27 @@ _CHECK_Z = np.concatenate([np.linspace(0.0, 20.0, 401), np.geomspace(20.0, 1.2e3
 
 class CosmologyError(ZsieveError, ValueError):
     """A cosmology or a redshift that cannot be used (unknown name, inconsistent parameters)."""
+
+
+def finite_number(value, what: str, *, lo: float = -math.inf, hi: float = math.inf, error=CosmologyError) -> float:
+    """``value`` as a finite float within [lo, hi], or ``error`` with one sentence saying why.
+
+    >>> finite_number("2.5", "H0")
+    2.5
+    >>> finite_number("x", "redshift")
+    Traceback (most recent call last):
+    ...
+    zsieve.cosmology.models.CosmologyError: redshift must be a number, got 'x'
+    """
+    try:
+        out = float(value)
+    except (TypeError, ValueError):
+        raise error(f"{what} must be a number, got {value!r}") from None
+    if not math.isfinite(out):
+        raise error(f"{what} must be finite, got {value!r}")
+    if not lo <= out <= hi:
+        raise error(f"{what} must be within [{lo:g}, {hi:g}], got {value!r}")
+    return out
 
 
 def available_names() -> tuple[str, ...]:
@@ -99,13 +120,7 @@ def _number(params: Mapping, key: str, default=None) -> float | None:
 
         unit = {"H0": u.km / u.s / u.Mpc, "Tcmb0": u.K}.get(key, u.dimensionless_unscaled)
         value = value.to_value(unit)
-    try:
-        out = float(value)
-    except (TypeError, ValueError):
-        raise CosmologyError(f"cosmology parameter {key} must be a number, got {value!r}") from None
-    if not math.isfinite(out):
-        raise CosmologyError(f"cosmology parameter {key} must be finite, got {value!r}")
-    return out
+    return finite_number(value, f"cosmology parameter {key}")
 
 
 def _from_params(params: Mapping):

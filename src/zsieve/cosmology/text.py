@@ -10,8 +10,8 @@ Examples
 >>> text = format_table([describe(0.5, cosmology={"H0": 70, "Om0": 0.3})])
 >>> print(text.splitlines()[0])
 Cosmology: custom FlatLambdaCDM: H0 = 70 km/s/Mpc, Om0 = 0.3, Ode0 = 0.7, Ok0 = 0, w0 = -1, Tcmb0 = 0 K
->>> [line.strip() for line in text.splitlines() if line.strip().startswith("luminosity")]
-['luminosity distance                     2832.9  Mpc']
+>>> [" ".join(line.split()) for line in text.splitlines() if line.strip().startswith("luminosity")]
+['luminosity distance 2832.9 Mpc']
 """
 
 from __future__ import annotations
