@@ -34,9 +34,9 @@ __all__ = ["draw_z_samples", "summarise", "interpolate_on_grid", "GRID_POINTS", 
 log = logging.getLogger(__name__)
 
 #: Points of the interpolation grid (uniform in ln(1+z)).
-GRID_POINTS = 512
+GRID_POINTS = 256
 #: Use the grid only when there are more distinct samples than this; below it, evaluate directly.
-GRID_THRESHOLD = 600
+GRID_THRESHOLD = 300
 
 
 def draw_z_samples(z: float, sigma: float, n: int, seed=0) -> np.ndarray:
