@@ -169,3 +169,20 @@ def test_peculiar_velocity_removed_multiplicatively():
     # first order: c * dz = v (1 + z)
     assert C_KMS * (info["z_cmb"] - info["z_cosmological"]) == pytest.approx(400.0 * 1.02, rel=1e-3)
     assert remove_peculiar_velocity(0.1, 0.0) == pytest.approx(0.1, abs=1e-15)
+
+
+def test_measurement_record_moves_samples_with_the_frame():
+    from zsieve.cosmology import describe, describe_measurement
+
+    meta = SpectrumMeta(ra_deg=53.1, dec_deg=-27.8, mjd=60310.25, site_lon_deg=SITE[0],
+                        site_lat_deg=SITE[1], site_height_m=SITE[2], frame="topocentric")
+    samples = 1.42 + 0.0005 * np.random.default_rng(5).standard_normal(200)
+    rec = describe_measurement(1.42, z_samples=samples, meta=meta)
+    fr, cos = rec["frames"], rec["cosmology"]
+    assert cos["frame"] == "cmb" and cos["z"] == fr["z_cmb"]
+    # a frame change multiplies 1+z by one factor (design section 2), so samples move with it
+    moved = (1 + samples) * (1 + fr["z_cmb"]) / (1 + 1.42) - 1
+    direct = describe(fr["z_cmb"], z_samples=moved)
+    assert cos["luminosity_distance_mpc_p84"] == pytest.approx(direct["luminosity_distance_mpc_p84"], rel=1e-12)
+    unknown = describe_measurement(0.3, meta=SpectrumMeta())
+    assert unknown["cosmology"]["frame"] == "unknown" and any("could not be moved" in n for n in unknown["cosmology"]["notes"])

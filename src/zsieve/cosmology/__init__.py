@@ -7,6 +7,8 @@
   or z ± σ;
 * :mod:`zsieve.cosmology.frames` - barycentric/heliocentric correction, CMB-frame redshift and
   peculiar-velocity removal (``frames.frame_info``);
+* :func:`describe_measurement` (:mod:`zsieve.cosmology.measurement`) - both for a fit: the
+  ``frames`` and ``cosmology`` records of a result, distances from the CMB-frame z;
 * :mod:`zsieve.cosmology.text` - the human-readable table.
 
 Examples
@@ -18,6 +20,7 @@ Examples
 """
 
 from .distances import QUANTITY_KEYS, UNITS, check_redshift, describe, quantities
+from .measurement import describe_measurement
 from .models import (
     DEFAULT_COSMOLOGY,
     CosmologyError,
@@ -31,6 +34,7 @@ __all__ = [
     "get_cosmology",
     "quantities",
     "describe",
+    "describe_measurement",
     "check_redshift",
     "cosmology_record",
     "describe_cosmology",

@@ -2,7 +2,7 @@
 
 One block per redshift, grouped as distances, times, scales, recession velocities and Doppler
 figures, each row with its unit and - when an uncertainty was propagated - the asymmetric
-interval to the 16th and 84th percentiles. Notes shared by all blocks are printed once.
+interval to the 16th and 84th percentiles (to two significant figures). Notes shared by all blocks are printed once.
 
 Examples
 --------
@@ -15,6 +15,8 @@ Cosmology: custom FlatLambdaCDM: H0 = 70 km/s/Mpc, Om0 = 0.3, Ode0 = 0.7, Ok0 = 
 """
 
 from __future__ import annotations
+
+import math
 
 from .models import describe_cosmology
 
@@ -89,7 +91,11 @@ def _interval(rec: dict, key: str, decimals: int) -> str:
     value, lo, hi = rec.get(key), rec.get(f"{key}_p16"), rec.get(f"{key}_p84")
     if value is None or lo is None or hi is None:
         return ""
-    return f"  +{_num(hi - value, decimals)} / -{_num(value - lo, decimals)}"
+    up, down = hi - value, value - lo
+    small = min(abs(up), abs(down))
+    if small > 0 and math.isfinite(small):  # two significant figures of the smaller side
+        decimals = int(min(8, max(0, 1 - math.floor(math.log10(small)))))
+    return f"  +{_num(up, decimals)} / -{_num(down, decimals)}"
 
 
 def _z_header(rec: dict) -> str:
