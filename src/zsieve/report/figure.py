@@ -401,5 +401,8 @@ def write_figure(path: str | os.PathLike, result, spectrum, *, dpi: int = 100) -
     if fmt == "png":
         FigureCanvasAgg(fig)
     buf = io.BytesIO()
-    fig.savefig(buf, format=fmt, dpi=dpi, metadata={"Software": "zsieve"} if fmt == "png" else None)
+    if fmt == "png":  # light compression: a third of the encoding time for ~20% larger files
+        fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": "zsieve"}, pil_kwargs={"compress_level": 3})
+    else:
+        fig.savefig(buf, format="pdf", dpi=dpi)
     return write_atomic(path, buf.getvalue())
