@@ -20,7 +20,6 @@ Examples
 """
 
 from .distances import QUANTITY_KEYS, UNITS, check_redshift, describe, quantities
-from .measurement import describe_measurement
 from .models import (
     DEFAULT_COSMOLOGY,
     CosmologyError,
@@ -44,3 +43,12 @@ __all__ = [
     "UNITS",
     "QUANTITY_KEYS",
 ]
+
+
+def __getattr__(name):
+    # describe_measurement needs astropy.coordinates (slow to import): load it on first use
+    if name == "describe_measurement":
+        from .measurement import describe_measurement
+
+        return describe_measurement
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
