@@ -262,3 +262,8 @@ def test_copies_are_independent():
     a = load_linelist("stellar")
     a["wave_vac"][0] = -1.0
     assert load_linelist("stellar")["wave_vac"][0] > 0
+
+
+def test_versions_recorded():
+    assert load_linelist().meta["version"] == load_linelist("quasar").meta["version"] != ""
+    assert sky_features().meta["version"]

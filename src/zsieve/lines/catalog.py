@@ -216,6 +216,8 @@ def _normalise(tab: Table, path, list_name: str) -> Table:
         out["source"] = np.full(n, f"user list {Path(str(path)).name}")
     out["list"] = np.full(n, list_name)
     out.meta["source_file"] = str(path)
+    if "version" in tab.meta:
+        out.meta["version"] = str(tab.meta["version"])
     return out
 
 
@@ -224,7 +226,8 @@ def _load_cached(key: str) -> Table:
     if key == "default":
         parts = [_load_cached(name) for name in BUNDLED_LISTS]
         tab = vstack(parts, metadata_conflicts="silent")
-        tab.meta = {"source_file": "bundled: " + ", ".join(BUNDLED_LISTS)}
+        versions = sorted({p.meta.get("version", "?") for p in parts})
+        tab.meta = {"source_file": "bundled: " + ", ".join(BUNDLED_LISTS), "version": "+".join(versions)}
         return tab
     if key in BUNDLED_LISTS:
         path = bundled_path(key)
@@ -311,6 +314,8 @@ def _sky_cached(path_key: str) -> Table:
     out["wave_air_lo"] = np.asarray(raw["wave_air_lo"], dtype=float)
     out["wave_air_hi"] = np.asarray(raw["wave_air_hi"], dtype=float)
     out.meta["source_file"] = str(path)
+    if "version" in raw.meta:
+        out.meta["version"] = str(raw.meta["version"])
     return out
 
 
