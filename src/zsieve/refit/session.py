@@ -221,6 +221,7 @@ class RefitSession:
         self.decisions: list[dict[str, Any]] = []
         self.message = ""  # last thing worth telling the person (shown in the window)
         self._linelist = None
+        self._prepared = None
         self._state: ObjectState | None = None
         self._open(0)
 
@@ -444,14 +445,26 @@ class RefitSession:
         self.state.pin = float(wavelength)
         self.message = f"feature at {wavelength:.1f} A: name it (n)"
 
-    def feature_kind(self, wavelength: float) -> str:
-        """``"emission"`` or ``"absorption"``: the sign of the flux above the engine's continuum
-        within three pixels of ``wavelength``."""
+    def prepared(self):
+        """The engine's preparation (masks, continuum) of the spectrum with the session's masks
+        and sky switch; cached until those change."""
         from ..engine.prepare import prepare
 
         st = self.state
+        key = (self.position, id(self.spectrum), tuple(st.masks), st.mask_sky)
+        if self._prepared is None or self._prepared[0] != key:
+            base = self._base_config(st.item)
+            prep = prepare(self.spectrum, mask_sky=st.mask_sky,
+                           extra_masks=tuple(st.masks) + tuple(base.extra_masks or ()),
+                           sky_min_strength=base.sky_min_strength, continuum_kms=base.continuum_kms)
+            self._prepared = (key, prep)
+        return self._prepared[1]
+
+    def feature_kind(self, wavelength: float) -> str:
+        """``"emission"`` or ``"absorption"``: the sign of the flux above the engine's continuum
+        within three pixels of ``wavelength``."""
         spec = self.spectrum
-        prep = prepare(spec, mask_sky=st.mask_sky, extra_masks=st.masks)
+        prep = self.prepared()
         i = int(np.clip(np.searchsorted(spec.wavelength, wavelength), 0, spec.n_pix - 1))
         sl = slice(max(i - 3, 0), i + 4)
         return "emission" if float(np.sum(prep.resid[sl])) >= 0 else "absorption"
@@ -852,7 +865,7 @@ class RefitSession:
         session's masks) plus every fitted line of the current answer (report layer)."""
         from ..report.figure import model_flux
 
-        return model_flux(self.spectrum, self.display_result())
+        return model_flux(self.spectrum, self.display_result(), prepared=self.prepared())
 
 
 # ----------------------------------------------------------------------------- helpers

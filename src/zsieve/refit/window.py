@@ -141,7 +141,11 @@ class RefitWindow:
             return
         if self.prompt is not None:
             self._prompt_key(key)
-            self.redraw()
+            if self.prompt is not None:  # still typing: only the prompt line changes
+                self._draw_text()
+                self._show()
+            else:
+                self.redraw()
             return
         binding = BINDINGS.get(key)
         if binding is None:
@@ -326,7 +330,13 @@ class RefitWindow:
         self._draw_curve()
         self._draw_text()
         self.help.set_visible(self.show_help)
-        self.fig.canvas.draw_idle()
+        self._show()
+
+    def _show(self) -> None:
+        """Ask an interactive canvas to repaint; a non-interactive one (Agg) renders on save."""
+        canvas = self.fig.canvas
+        if getattr(type(canvas), "required_interactive_framework", None) is not None:
+            canvas.draw_idle()
 
     def _draw_spectrum(self):
         from ..engine.prepare import sky_ranges
