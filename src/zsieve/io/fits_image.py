@@ -177,18 +177,19 @@ def read_image_hdus(path, ff, builder):
     # Companion extensions of the same shape.
     comp: dict[str, tuple[str, np.ndarray, object]] = {}
     for info in images:
-        if info is flux_info or info.shape[-1] != npix:
+        if info is flux_info:
             continue
         role = uncertainty_kind_of_hdu(info)
         if role in (None, "flux", "ormask") or role in comp:
             continue
+        want = npix if role in ("wave", "loglam") else flux.size
+        size = int(np.prod(info.shape))
+        if size != want:
+            raise SpectrumFileError(
+                path, f"length mismatch: extension {info.name!r} has {size} values but the flux has {want}"
+            )
         data = ff.image(info)
-        if role in ("wave", "loglam"):
-            data = data.reshape(-1)[:npix] if data.size >= npix else data
-        else:
-            if data.size != flux.size:
-                continue
-            data = data.reshape(flux.shape)
+        data = data.reshape(-1) if role in ("wave", "loglam") else data.reshape(flux.shape)
         comp[role] = (role, data, info.header)
     # Rows named in the header: a survey-style stacked image (handled like the extensions).
     fmt = "fits-image"

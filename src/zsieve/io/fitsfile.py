@@ -290,7 +290,9 @@ class FitsFile:
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 try:
-                    self._hdul = fits.open(self.path, memmap=not self.compressed, lazy_load_hdus=True)
+                    self._hdul = fits.open(
+                        self.path, memmap=not self.compressed, lazy_load_hdus=True, do_not_scale_image_data=True
+                    )
                 except Exception as exc:  # noqa: BLE001 - any failure: not readable
                     raise SpectrumFileError(self.path, f"not a readable FITS file ({_short(exc)})") from None
             self._log_warnings(caught)
@@ -346,11 +348,12 @@ class FitsFile:
     def image(self, info: HDUInfo) -> np.ndarray:
         """The image data of ``info`` as float64 (BSCALE/BZERO applied, BLANK -> NaN)."""
         h = info.header
-        if self._fh is None:
-            return self._astropy_data(info).astype(float)
         dtype = np.dtype(_BITPIX_DTYPE[h["BITPIX"]])
         n = math.prod(info.shape)
-        arr = np.frombuffer(self._read_bytes(info, n * dtype.itemsize), dtype=dtype, count=n)
+        if self._fh is None:  # compressed: astropy gives the stored values, scaled below
+            arr = np.asarray(self._astropy_data(info)).reshape(-1)
+        else:
+            arr = np.frombuffer(self._read_bytes(info, n * dtype.itemsize), dtype=dtype, count=n)
         out = arr.astype(float).reshape(info.shape)
         blank = h.get("BLANK")
         if dtype.kind in "iu" and isinstance(blank, int):

@@ -311,7 +311,8 @@ def _site(h: HeaderView):
         lon, lat = _parse_angle(vlon, hours=False), _parse_angle(vlat, hours=False)
         if lon is None or lat is None or not (-90.0 <= lat <= 90.0) or not (-360 <= lon <= 360):
             continue
-        lon = (lon + 180.0) % 360.0 - 180.0
+        if not -180.0 < lon <= 180.0:
+            lon = (lon + 180.0) % 360.0 - 180.0
         height = None
         for ka in kalts:
             height = h.number(ka)

@@ -24,6 +24,7 @@ import io
 import logging
 import os
 import re
+import warnings
 
 import numpy as np
 
@@ -122,7 +123,7 @@ def _read_ecsv(path, text, builder, wave_unit):
     from astropy.table import Table
 
     try:
-        table = Table.read(io.StringIO(text), format="ascii.ecsv")
+        table = Table.read(text.splitlines(), format="ascii.ecsv")
     except Exception as exc:  # noqa: BLE001 - any parse failure is a bad file
         raise SpectrumFileError(path, f"not a readable ECSV table ({' '.join(str(exc).split())[:160]})") from None
     if len(table) > MAX_PIXELS:
@@ -180,7 +181,9 @@ def _read_delimited(path, text, kind, builder, wave_unit):
         delim = None
     body = "\n".join(lines[body_start:])
     try:
-        data = np.loadtxt(io.StringIO(body), delimiter=delim, comments="#", ndmin=2, dtype=float)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)  # "input contained no data": handled below
+            data = np.loadtxt(io.StringIO(body), delimiter=delim, comments="#", ndmin=2, dtype=float)
     except ValueError:
         try:  # empty fields: fill with NaN
             data = np.genfromtxt(io.StringIO(body), delimiter=delim, comments="#", dtype=float, filling_values=np.nan)

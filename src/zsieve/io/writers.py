@@ -69,6 +69,11 @@ def _uncertainty(spec, kind: str) -> np.ndarray:
     raise ValueError(f"uncertainty must be 'sigma', 'var', 'ivar' or None, not {kind!r}")
 
 
+def _usable_uncertainty(spec, kind):
+    """``kind``, or ``None`` when the spectrum has no known uncertainty at all."""
+    return kind if np.isfinite(spec.sigma).any() else None
+
+
 def _meta_cards(spec, medium: str) -> list[tuple[str, object, str]]:
     m = spec.meta
     cards: list[tuple[str, object, str]] = []
@@ -136,6 +141,7 @@ def write_fits_image(
     from astropy.io import fits
 
     unit, factor = _unit(wave_unit)
+    uncertainty = _usable_uncertainty(spec, uncertainty)
     wave = _medium_wave(spec, medium) / factor
     n = wave.size
     if n < 2:
@@ -173,7 +179,7 @@ def write_fits_image(
         data = _uncertainty(spec, uncertainty)
         ext = fits.ImageHDU(np.asarray(data, dtype=dtype), name=extname)
         ext.header["HDUCLAS2"] = ("ERROR", "uncertainty of the primary flux")
-        ext.header["HDUCLAS3"] = (cls3, "RMSE = sigma, MSE = variance, INVMSE = 1/variance")
+        ext.header["HDUCLAS3"] = (cls3, "RMSE sigma, MSE variance, INVMSE 1/var")
         hdus.append(ext)
     if mask and spec.mask.any():
         hdus.append(fits.ImageHDU(spec.mask.astype(np.uint8), name="MASK"))
@@ -193,6 +199,7 @@ def write_fits_table(
     from astropy.io import fits
 
     unit, factor = _unit(wave_unit)
+    uncertainty = _usable_uncertainty(spec, uncertainty)
     wave = _medium_wave(spec, medium)
     cols = []
     if log10:
@@ -225,6 +232,7 @@ def write_text(
     if fmt not in ("csv", "tsv", "ecsv"):
         raise ValueError(f"fmt must be csv, tsv or ecsv, not {fmt!r}")
     unit, factor = _unit(wave_unit)
+    uncertainty = _usable_uncertainty(spec, uncertainty)
     wave = _medium_wave(spec, medium) / factor
     cols = {"wavelength": wave, "flux": spec.flux}
     uname = {"sigma": "sigma", "var": "variance", "ivar": "ivar", None: None}[uncertainty]
