@@ -26,4 +26,14 @@ __all__ = [
     "SpectrumFileError",
     "LimitExceededError",
     "FitError",
+    "measure",
 ]
+
+
+def __getattr__(name):
+    # zsieve.measure(path_or_spectrum, **options): loaded on first use so `import zsieve` stays light
+    if name == "measure":
+        from .engine.measure import measure_any
+
+        return measure_any
+    raise AttributeError(f"module 'zsieve' has no attribute {name!r}")

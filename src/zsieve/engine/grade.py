@@ -46,7 +46,7 @@ GRADE_RULES = {
                    forbid=("one-line", "sky-overlap", "xcorr-differs", "close-rival", "often-nothing",
                            "faint", "noise-from-scatter")),
     "likely": dict(probability=0.85, n_lines=2, evidence=40.0, margin=15.0,
-                   forbid=("one-line", "sky-overlap", "often-nothing")),
+                   forbid=("one-line", "sky-overlap", "often-nothing", "xcorr-differs")),
     "tentative": dict(probability=0.4, n_lines=1, evidence=20.0, margin=0.0, forbid=()),
 }
 

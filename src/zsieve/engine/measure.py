@@ -42,8 +42,8 @@ from .detect import detect_features
 from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
 from .prepare import C_KMS, LoglamMap, prepare, range_mask, sky_ranges
-from .quasar import systemic_summary
-from .refine import CandidateFit, LineModel, line_table, refine
+from .quasar import systemic_scatter, systemic_summary
+from .refine import CandidateFit, LineModel, group_snr, line_table, refine
 
 __all__ = ["MeasureConfig", "measure", "STAR_MAX_KMS"]
 
@@ -150,13 +150,18 @@ def _bank(cfg, step, resolution_kms, rest_lo, rest_hi):
 
 # ------------------------------------------------------------------ helpers
 def _resolution(cfg, feats, dv_kms):
+    """Instrumental Gaussian sigma (km/s): from the config, else the narrowest strong features.
+
+    The estimate is the lower quartile of the velocity sigma of features with S/N >= 10, kept
+    between about a pixel and 90 km/s (R ~ 1400); the fallback is R = 2000 (150 km/s FWHM).
+    """
     if cfg.resolution_kms:
         return float(cfg.resolution_kms) / 2.3548
-    sv = [C_KMS * f.sigma_A / f.centroid for f in feats if f.snr >= 10 and f.kind == "emission"]
+    sv = [C_KMS * f.sigma_A / f.centroid for f in feats if f.snr >= 10]
     floor = 0.8 * dv_kms  # a line is never narrower than about a pixel
     if len(sv) >= 2:
-        return float(max(floor, min(np.percentile(sv, 25), 150.0)))
-    return float(max(floor, 150.0 / 2.3548 * 0.6))
+        return float(max(floor, min(np.percentile(sv, 25), 90.0)))
+    return float(max(floor, 150.0 / 2.3548))
 
 
 def _z_window(seed: Seed, cfg):
@@ -243,13 +248,10 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
     if cfg.xcorr:
         xc = _xcorr(prep, cfg, sig_inst, (min(cfg.z_min, star_lo), cfg.z_max))
     if xc is not None:
+        # plausible peaks only: stars near rest, the other classes inside the z range
+        xc["peaks"] = [p for p in xc["peaks"] if p.template_class in linesets and (
+            abs(p.z) <= STAR_MAX_KMS / C_KMS if p.template_class == "star" else cfg.z_min <= p.z <= cfg.z_max)]
         for p in xc["peaks"]:
-            if p.template_class not in linesets:
-                continue
-            if p.template_class == "star" and abs(p.z) > STAR_MAX_KMS / C_KMS:
-                continue
-            if p.template_class != "star" and p.z < cfg.z_min:
-                continue
             seeds.append(Seed(float(p.z), p.template_class, "xcorr", score=0.0, r_tdr=float(p.r_tdr)))
     seeds = dedupe(seeds, tol_kms=50.0)
 
@@ -261,9 +263,10 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
         q, nact = _quick_score(ls, s.z, prep, sig_inst, width, cfg.penalty)
         scored.append((q, s))
     scored.sort(key=lambda t: -t[0])
-    shortlist: list[Seed] = []
+    # the class priors (a star at rest) are always refined
+    shortlist = [s for q, s in scored if s.origin == "prior" and np.isfinite(q)]
     for q, s in scored:
-        if not np.isfinite(q):
+        if not np.isfinite(q) or s.origin == "prior":
             continue
         if any(o.cls == s.cls and _same_z(o.z, s.z, 150.0) for o in shortlist):
             continue
@@ -348,6 +351,10 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
         res.z_p16, res.z_p50, res.z_p84 = best.z - best.z_err, best.z, best.z + best.z_err
     res.template = best.cls
     if best.cls == "quasar":
+        sys_err = systemic_scatter(rows, best.z)
+        res.extra["z_err_measurement"] = res.z_err
+        res.extra["z_err_offsets"] = sys_err
+        res.z_err = float(math.hypot(res.z_err, sys_err))
         res.systemic = systemic_summary(rows, best.z, res.z_err)
 
     # ---------------------------------------------------------------- candidates
@@ -382,11 +389,10 @@ GRADE_SCORE_MIN = 20.0
 
 
 def _n_independent(fit: CandidateFit, rows) -> int:
-    ls = fit.model.ls
     if rows is None:
-        return len({int(ls.group[l]) for l in fit.active_lines})
-    names = {r["name"] for r in rows if r["snr"] >= 3.0}
-    return len({int(ls.group[l]) for l in fit.active_lines if ls.names[l] in names})
+        gs = group_snr(fit)
+        return int((gs >= 4.0).sum())
+    return len(_independent(fit, rows))
 
 
 def _nearest_r(xc, fit):
@@ -404,15 +410,31 @@ def _origin(seed, xc, fit):
     return "xcorr" if from_x else "lines"
 
 
+def _independent(best, rows, min_snr=4.0, off_sky_only=False):
+    """Groups of the best fit measured at S/N >= min_snr (optionally only lines off the sky)."""
+    ls = best.model.ls
+    sky = sky_ranges(0.3, 3.0, bands=False)
+    out = set()
+    for r in rows:
+        if r["snr"] < min_snr:
+            continue
+        if off_sky_only and range_mask(np.array([r["observed_wavelength"]]), sky)[0]:
+            continue
+        out.add(int(ls.group[ls.names.index(r["name"])]))
+    return out
+
+
 def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg):
     flags = []
-    n_ind = len({int(best.model.ls.group[best.model.ls.names.index(r["name"])]) for r in rows if r["snr"] >= 3.0})
+    n_ind = len(_independent(best, rows))
     if n_ind <= 1:
         flags.append("one-line")
     strong = max(rows, key=lambda r: r["snr"]) if rows else None
     if strong is not None:
         lam = strong["observed_wavelength"]
-        if range_mask(np.array([lam]), sky_ranges(0.3, 3.0 + 2 * strong["sigma_A"], bands=False))[0]:
+        # the answer leans on the sky when fewer than two independent lines stand off it
+        if len(_independent(best, rows, off_sky_only=True)) < 2 and n_ind >= 1 and \
+                len(_independent(best, rows, off_sky_only=True)) < n_ind:
             flags.append("sky-overlap")
         if lam - prep.wave[0] < 20.0 or prep.wave[-1] - lam < 20.0:
             flags.append("at-edge")
@@ -443,3 +465,36 @@ def _attach_xcorr(res, xc):
                           "r": [float(v) for v in np.asarray(c)]}
     if xc["peaks"]:
         res.extra["xcorr_peaks"] = [dict(z=p.z, r_tdr=p.r_tdr, template=p.template_class) for p in xc["peaks"][:8]]
+
+
+def measure_any(path_or_spectrum, *, config: MeasureConfig | None = None, medium=None, index: int = 0,
+                **options) -> FitResult:
+    """Measure a :class:`~zsieve.spectrum.Spectrum` or the spectrum in a file (package-level
+    ``zsieve.measure``).
+
+    A path is read with :func:`zsieve.io.read_spectrum` (``medium`` and ``index`` passed on);
+    unreadable files raise :class:`zsieve.errors.SpectrumFileError`. Other keywords are fields
+    of :class:`MeasureConfig` (e.g. ``n_resamples=50, seed=1, z_max=1.5``).
+    """
+    from ..spectrum import Spectrum
+
+    fields = {f.name for f in dataclasses.fields(MeasureConfig)}
+    unknown = sorted(set(options) - fields)
+    if unknown:
+        raise TypeError(f"unknown measure option(s) {', '.join(unknown)}; known: {', '.join(sorted(fields))}")
+    for key in ("classes", "extra_masks"):
+        if key in options and not isinstance(options[key], tuple):
+            options[key] = tuple(tuple(v) if isinstance(v, list) else v for v in options[key])
+    cfg = (config or MeasureConfig()).replace(**options) if options else (config or MeasureConfig())
+    if isinstance(path_or_spectrum, Spectrum):
+        spec = path_or_spectrum
+        source = spec.meta.source or ""
+    else:
+        from ..io import read_spectrum
+
+        spec = read_spectrum(path_or_spectrum, medium=medium, index=index)
+        source = str(path_or_spectrum)
+    res = measure(spec, cfg)
+    if not res.file:
+        res.file = source
+    return res

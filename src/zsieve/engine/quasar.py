@@ -29,7 +29,11 @@ import numpy as np
 
 from .prepare import C_KMS
 
-__all__ = ["systemic_from_line", "systemic_summary", "REFERENCE"]
+__all__ = ["systemic_from_line", "systemic_summary", "systemic_scatter", "REFERENCE", "OFFSET_SCATTER_KMS"]
+
+#: Object-to-object scatter of a broad line's offset about its mean (a few hundred km/s;
+#: Shen et al. 2016, ApJ 831, 7; from memory). It limits a systemic z however high the S/N.
+OFFSET_SCATTER_KMS = 250.0
 
 REFERENCE = "mean broad-line offsets: Shen et al. 2016, ApJ 831, 7; Vanden Berk et al. 2001, AJ 122, 549 (from memory)"
 
@@ -41,6 +45,24 @@ def systemic_from_line(z_line, offset_kms):
     1.002002
     """
     return (1.0 + np.asarray(z_line, dtype=float)) / (1.0 + np.asarray(offset_kms, dtype=float) / C_KMS) - 1.0
+
+
+def systemic_scatter(rows, z_fit: float, min_snr: float = 5.0) -> float:
+    """Error of the systemic z from the scatter of the line offsets (in z units).
+
+    The joint fit weighs each broad line by its information ``w_i = 1 / err_i^2``; with an
+    independent offset scatter ``s`` per line the weighted mean carries
+    ``sqrt(sum w_i^2 s^2) / sum w_i``.
+
+    >>> rows = [dict(snr=50.0, observed_wavelength_err=0.5, broad=True)] * 4
+    >>> round(systemic_scatter(rows, 0.0) * C_KMS, 1)   # four equal lines: 250 / 2
+    125.0
+    """
+    w = np.array([1.0 / r["observed_wavelength_err"] ** 2 for r in rows
+                  if r.get("broad") and r.get("snr", 0.0) >= min_snr and r["observed_wavelength_err"] > 0])
+    if w.size == 0:
+        return float(OFFSET_SCATTER_KMS / C_KMS * (1 + z_fit))
+    return float(np.sqrt(np.sum(w**2)) / np.sum(w) * OFFSET_SCATTER_KMS / C_KMS * (1 + z_fit))
 
 
 def systemic_summary(rows, z_fit: float, z_err: float, min_snr: float = 3.0) -> dict:

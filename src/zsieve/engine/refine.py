@@ -280,7 +280,10 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     scale = [max(1e-5 * (1 + z0), z_tol / 30.0), 30.0] + ([0.2] if has_broad else [])
     # a coarse scan in z first: line fits have many local minima on the scale of a line width
     if scan:
-        zs = z0 + np.linspace(-z_tol, z_tol, 9) * 0.9
+        # steps of about 0.7 line sigma (narrow lines), 9 to 41 points
+        sv_min = float(np.min(model._sigma_v(w0, 1.0)))
+        n_scan = int(np.clip(2 * z_tol / (1 + z0) * C_KMS / (0.7 * sv_min), 9, 41))
+        zs = z0 + np.linspace(-z_tol, z_tol, n_scan) * 0.95
         chis = [float(np.sum(fun(np.r_[zz, p0[1:]]) ** 2)) for zz in zs]
         chi0 = float(np.sum(fun(p0) ** 2))
         if min(chis) < chi0:
