@@ -107,3 +107,11 @@ def test_real_process_exit_code():
     code = "import sys; from zsieve.cli import main; sys.exit(main(sys.argv[1:]))"
     bad = subprocess.run([sys.executable, "-c", code, "distances", "-3"], capture_output=True, text=True, timeout=120)
     assert bad.returncode == 2 and bad.stderr.count("\n") == 1 and bad.stdout == ""
+
+
+def test_negative_exponent_redshift_is_a_star_not_an_option(capsys):
+    rec = _run_json(capsys, "-1e-4")
+    assert rec["z"] == -1e-4 and rec["comoving_distance_mpc"] is None
+    a = (1 - 1e-4) ** 2  # special-relativistic Doppler (common practice)
+    c_kms = 299792.458  # astropy.constants.c (CODATA, exact)
+    assert rec["relativistic_doppler_velocity_kms"] == pytest.approx(c_kms * (a - 1) / (a + 1), rel=1e-12)

@@ -16,6 +16,8 @@ from __future__ import annotations
 import argparse
 import json
 import logging
+import os
+import re
 import sys
 
 __all__ = ["register", "run"]
@@ -25,9 +27,9 @@ log = logging.getLogger(__name__)
 _EPILOG = (
     "--json prints one object for a single Z and a list of objects for several. "
     "A custom model needs --H0 and --Om0; without --Ode0 it is flat; Tcmb0 defaults to 0 K "
-    "(no radiation). A negative Z below 1 is allowed (blueshifted stars): distances are then "
-    "undefined and only the Doppler figures are given; write small negative values as e.g. "
-    "-0.0001 rather than -1e-4, or put them after --."
+    "(no radiation). A Z between -1 and 0 is allowed (blueshifted stars): distances are then "
+    "undefined and only the Doppler figures are given; values such as -0.0001 or -1e-4 "
+    "are read as redshifts."
 )
 
 
@@ -55,6 +57,9 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--samples", default="2000", metavar="N", help="draws of z +/- S for the uncertainties (default 2000)")
     p.add_argument("--seed", default="0", metavar="K", help="random seed of those draws (default 0)")
     p.add_argument("--json", action="store_true", help="print JSON instead of a table")
+    # Let "-1e-4" be read as a (negative) redshift, not an option: argparse's own pattern
+    # only knows plain decimals. Harmless where argparse already accepts it.
+    p._negative_number_matcher = re.compile(r"^-(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?$")
     p.set_defaults(func=run)
     return p
 
@@ -129,7 +134,13 @@ def run(args) -> int:
         return 2
     if args.json:
         payload = records[0] if len(records) == 1 else records
-        print(json.dumps(payload, indent=2, allow_nan=False))
+        text = json.dumps(payload, indent=2, allow_nan=False)
     else:
-        print(format_table(records))
+        text = format_table(records)
+    try:
+        print(text)
+        sys.stdout.flush()
+    except BrokenPipeError:  # e.g. piped into `head`: stop quietly (Python docs, signal module)
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 1
     return 0
