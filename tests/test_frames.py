@@ -28,7 +28,7 @@ from zsieve.spectrum import SpectrumMeta
 
 C_KMS = const.c.to_value("km/s")
 # Invented demo site (Mount Perrault Observatory) given as numbers, never looked up by name.
-SITE = (-105.82, 32.78, 2788.0)
+SITE = (-68.92, -24.61, 2905.0)
 EQUINOX_2024 = 60389.5  # 2024 March 20, 12h UTC; the equinox was at 03:06 UTC (from memory)
 
 

@@ -83,12 +83,6 @@ UNITS = {
 #: The z-dependent keys, in report order.
 QUANTITY_KEYS = tuple(UNITS)
 
-#: Keys that exist only for z > 0 is meaningful (NaN / None for a blueshift).
-_COSMOLOGICAL_KEYS = tuple(
-    k for k in QUANTITY_KEYS if k not in ("z", "cz_kms", "cz_c", "relativistic_doppler_velocity_kms",
-                                          "relativistic_doppler_velocity_c")
-)
-
 _ARCSEC_RAD = math.pi / (180.0 * 3600.0)
 
 _LABELS = {
@@ -293,6 +287,7 @@ def describe(z, *, z_err=None, z_samples=None, cosmology=None, n_samples: int = 
         method = "gaussian"
 
     if samples is not None:
+        log.debug("propagating z=%g through %d %s samples", z, samples.size, method)
         sampled = _arrays(samples, cosmo, fast=True)
         for key in QUANTITY_KEYS:
             s = summarise(sampled[key])
