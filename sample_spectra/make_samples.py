@@ -143,7 +143,7 @@ def make(outdir: Path) -> list[dict]:
             site_height_m=SITE["height_m"], flux_unit=FLUX_UNIT, frame="topocentric",
         )
         z_file = item["z"]
-        v_bary = _barycentric_kms(ra, dec, mjd)
+        v_bary = _barycentric_kms(ra, dec, mjd) if frame == "barycentric" else 0.0
         # the mock is made as observed (topocentric); a barycentric file is shifted afterwards
         z_topo = z_file if frame == "topocentric" else (1 + z_file) / (1 + v_bary / C_KMS) - 1
         spec, truth = mock_spectrum(item["kind"], z_topo, item["snr"], rng, meta=meta, **item.get("sim", {}))
