@@ -486,3 +486,97 @@ def test_vacuum_to_air_writer_inverse(tmp_path):
     back = read_spectrum(tmp_path / "a.fits")
     np.testing.assert_allclose(back.wavelength, spec.wavelength, rtol=0, atol=1e-8)
     np.testing.assert_allclose(vacuum_to_air(back.wavelength), air, rtol=0, atol=1e-8)
+
+
+def test_ecsv_reader_agrees_with_astropy_table(tmp_path):
+    # astropy.table's ECSV reader is the reference for our fast path and is used as fallback.
+    from astropy.table import Table
+
+    spec = make_spectrum("log")
+    path = tmp_path / "s.ecsv"
+    write_text(spec, path, wave_unit="nm", uncertainty="ivar")
+    ref = Table.read(path, format="ascii.ecsv")
+    ours = read_spectrum(path)
+    np.testing.assert_allclose(ours.wavelength, np.asarray(ref["wavelength"]) * 10.0, rtol=1e-15)
+    np.testing.assert_array_equal(ours.flux, np.asarray(ref["flux"]))
+    np.testing.assert_array_equal(ours.mask, np.asarray(ref["mask"]) != 0)
+    # A string column and a missing value force the astropy path; same answer.
+    t = Table({"wave": spec.wavelength[:50], "flux": spec.flux[:50], "note": ["x"] * 50})
+    t["wave"].unit = "Angstrom"
+    t.meta["OBJECT"] = "CDX-0300"
+    t.write(tmp_path / "str.ecsv", format="ascii.ecsv")
+    s = read_spectrum(tmp_path / "str.ecsv")
+    np.testing.assert_array_equal(s.flux, spec.flux[:50])
+    assert s.meta.object_name == "CDX-0300" and s.meta.format == "ecsv"
+
+
+def test_extension_layout_with_named_uncertainty(tmp_path):
+    # Common practice: empty primary, flux in a SCI extension carrying the WCS, then ERR/WEIGHT.
+    spec = make_spectrum("linear", masked=False)
+    hdr = fits.Header({"CTYPE1": "AWAV", "CUNIT1": "Angstrom", "CRVAL1": 3800.0, "CDELT1": 1.35, "CRPIX1": 1})
+    prim = fits.PrimaryHDU()
+    prim.header["OBJECT"] = "CDX-0611"
+    hdus = [prim, fits.ImageHDU(spec.flux, header=hdr, name="SCI"), fits.ImageHDU(1 / spec.sigma**2, name="WEIGHT")]
+    fits.HDUList(hdus).writeto(tmp_path / "ext.fits")
+    s = read_spectrum(tmp_path / "ext.fits")
+    assert s.meta.object_name == "CDX-0611" and s.meta.medium == "air"
+    np.testing.assert_allclose(s.wavelength, air_to_vacuum(3800.0 + 1.35 * np.arange(N)), atol=1e-8)
+    np.testing.assert_allclose(s.sigma, spec.sigma, rtol=1e-12)
+
+
+def test_named_rows_and_unnamed_rows(tmp_path):
+    # IRAF-style BANDIDn row names (common practice): spectrum, sky, sigma.
+    spec = make_spectrum("linear", masked=False)
+    rows = np.vstack([spec.flux, np.zeros(N), spec.sigma])
+    hdr = fits.Header({"CTYPE1": "WAVE", "CUNIT1": "Angstrom", "CRVAL1": 3800.0, "CDELT1": 1.35, "CRPIX1": 1,
+                       "BANDID1": "spectrum - background fit", "BANDID2": "background", "BANDID3": "sigma"})
+    fits.PrimaryHDU(rows, header=hdr).writeto(tmp_path / "bands.fits")
+    [s] = read_spectra(tmp_path / "bands.fits")
+    np.testing.assert_array_equal(s.flux, spec.flux)
+    np.testing.assert_allclose(s.sigma, spec.sigma)
+    # Rows without names are separate spectra on one grid.
+    hdr2 = fits.Header({"CTYPE1": "WAVE", "CUNIT1": "Angstrom", "CRVAL1": 3800.0, "CDELT1": 1.35, "CRPIX1": 1})
+    fits.PrimaryHDU(np.vstack([spec.flux, 2 * spec.flux]), header=hdr2).writeto(tmp_path / "two.fits")
+    two = read_spectra(tmp_path / "two.fits")
+    assert len(two) == 2 and two[1].meta.index == 1
+    np.testing.assert_array_equal(two[1].flux, 2 * spec.flux)
+
+
+def test_property_any_order_and_unit_reads_back(tmp_path_factory):
+    # Property (hypothesis): a table in any unit and either order reads back sorted, in Angstrom.
+    from hypothesis import given, settings
+    from hypothesis import strategies as st
+
+    folder = tmp_path_factory.mktemp("prop")
+
+    @settings(max_examples=25, deadline=None)
+    @given(
+        start=st.floats(3000.0, 8000.0),
+        step=st.floats(0.1, 5.0),
+        n=st.integers(3, 300),
+        unit=st.sampled_from([("Angstrom", 1.0), ("nm", 10.0), ("um", 1e4)]),
+        reverse=st.booleans(),
+    )
+    def check(start, step, n, unit, reverse):
+        wave = start + step * np.arange(n)
+        flux = np.sin(wave)
+        w, f = (wave[::-1], flux[::-1]) if reverse else (wave, flux)
+        path = folder / "p.fits"
+        cols = [fits.Column(name="lam", format="D", unit=unit[0], array=w / unit[1]), fits.Column(name="flux", format="D", array=f)]
+        fits.BinTableHDU.from_columns(cols).writeto(path, overwrite=True)
+        s = read_spectrum(path)
+        np.testing.assert_allclose(s.wavelength, wave, rtol=1e-14)
+        np.testing.assert_array_equal(s.flux, flux)
+
+    check()
+
+
+def test_text_size_limit_and_directory(tmp_path, monkeypatch):
+    import zsieve.io.text as text_module
+
+    spec = make_spectrum("linear")
+    write_text(spec, tmp_path / "s.csv")
+    monkeypatch.setattr(text_module, "MAX_TEXT_BYTES", 1000)  # the check runs before reading
+    _expect(tmp_path / "s.csv", "larger than the limit", LimitExceededError)
+    (tmp_path / "folder.fits").mkdir()
+    _expect(tmp_path / "folder.fits", "directory")

@@ -38,7 +38,7 @@ import re
 import numpy as np
 
 from ..errors import SpectrumFileError
-from .header import HeaderView, as_bool, clean_text, medium_from_header
+from .header import HeaderView, clean_text, medium_from_header
 from .names import UNCERTAINTY_ROLES, role_of
 from .units import canonical_wave_unit, is_log_unit, to_sigma, wave_unit_factor
 

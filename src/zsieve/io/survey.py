@@ -25,7 +25,7 @@ named plate-MJD-fiber from PLATEID, MJD and FIBERID (the SDSS convention).
 Why not specutils' SDSS loaders (measured on the files in ``../shared/realdata``, astropy 8,
 specutils 2.4, this machine): reading an SDSS spec file through ``Spectrum.read(...,
 format='SDSS-III/IV spec')`` took about 20 ms (plus ~80 ms if the format has to be
-identified), against about 2-3 ms here; the spSpec loader took about 80 ms and, more
+identified), against 1-3 ms here (62 ms against 9 ms when the machine was loaded); the spSpec loader took about 80 ms and, more
 important, puts the wavelengths one pixel too red: its first wavelength is
 10^(COEFF0 + COEFF1), not 10^COEFF0, a shift of 1e-4 in log10 λ (69 km/s, Δz ≈ 2.3e-4),
 because it reads the CRPIX1 = 1 reference pixel as 0-based. For batches of thousands of files
