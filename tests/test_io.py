@@ -335,6 +335,9 @@ def test_fast_reader_agrees_with_astropy(tmp_path):
     with open(path, "rb") as src, gzip.open(gz, "wb") as dst:
         shutil.copyfileobj(src, dst)
     np.testing.assert_allclose(read_spectrum(gz).flux, ref, rtol=1e-12)
+    disguised = tmp_path / "gzipped-but-named.fits"  # gzip content without a .gz suffix
+    shutil.copy(gz, disguised)
+    np.testing.assert_allclose(read_spectrum(disguised).flux, ref, rtol=1e-12)
     # Unsigned table column stored with TZERO (FITS standard) and a string column beside it.
     cols = [
         fits.Column(name="lambda", format="D", unit="nm", array=spec.wavelength / 10),
@@ -466,6 +469,15 @@ def test_unit_guard(tmp_path):
     (tmp_path / "ok.csv").write_text("wave[nm],flux\n" + "\n".join(f"{x},1" for x in np.linspace(380, 980, 50)))
     s = read_spectrum(tmp_path / "ok.csv")
     assert abs(s.wavelength[0] - 3800.0) < 1e-9
+
+
+def test_writers_sanitise_untrusted_text(tmp_path):
+    spec = make_spectrum("linear", meta=SpectrumMeta(object_name="CDX-0099\n# OBJECT: evil\x1b[2J Ångström"))
+    for name in ("s.fits", "s.csv", "s.ecsv"):
+        writer = write_fits_image if name.endswith("fits") else write_text
+        writer(spec, tmp_path / name)
+        got = read_spectrum(tmp_path / name).meta.object_name
+        assert got.startswith("CDX-0099") and "\n" not in got and "\x1b" not in got
 
 
 def test_writer_refuses_irregular_grid(tmp_path):

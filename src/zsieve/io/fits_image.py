@@ -90,7 +90,8 @@ def wcs_wavelength(path, header, n: int) -> tuple[np.ndarray, str, bool, str | N
     if factor is None:
         raise SpectrumFileError(path, f"wavelength unit CUNIT1 = {unit_text!r} is not a length")
 
-    log10 = dcflag == 1 or is_log_unit(unit_text)
+    # DC-FLAG = 1 (log10 sampling) is an IRAF convention for LINEAR/blank axes, not for WAVE/AWAV.
+    log10 = (dcflag == 1 and base not in ("WAVE", "AWAV")) or is_log_unit(unit_text)
     if c0 is not None and c1 is not None and (log10 or wfit == "LOG-LINEAR" or crval is None) and base != "WAVE" and base != "AWAV":
         loglam = c0 + c1 * i
         wave = 10.0 ** loglam * factor

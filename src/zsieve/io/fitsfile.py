@@ -232,12 +232,19 @@ class FitsFile:
             raise SpectrumFileError(path, f"cannot be opened ({exc.strerror or exc})") from None
         self._hdul = None
         self._fh = None
-        self.compressed = self.path.lower().endswith(_COMPRESSED_SUFFIXES)
+        self.compressed = self.path.lower().endswith(_COMPRESSED_SUFFIXES) or self._gzip_magic()
         if self.compressed:
             self.infos = self._scan_astropy()
         else:
             self._fh = open(self.path, "rb")
             self.infos = self._scan_raw()
+
+    def _gzip_magic(self) -> bool:
+        try:
+            with open(self.path, "rb") as fh:
+                return fh.read(2) == b"\x1f\x8b"
+        except OSError as exc:
+            raise SpectrumFileError(self.path, f"cannot be opened ({exc.strerror or exc})") from None
 
     # ------------------------------------------------------------- scanning
     def _scan_raw(self) -> list[HDUInfo]:

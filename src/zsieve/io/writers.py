@@ -75,10 +75,16 @@ def _usable_uncertainty(spec, kind):
 
 
 def _meta_cards(spec, medium: str) -> list[tuple[str, object, str]]:
+    from .header import clean_text
+
     m = spec.meta
     cards: list[tuple[str, object, str]] = []
-    if m.object_name:
-        cards.append(("OBJECT", m.object_name, "object name"))
+    def ascii(text):  # FITS cards hold printable ASCII only
+        return text.encode("ascii", "replace").decode("ascii") if text else text
+
+    name = ascii(clean_text(m.object_name, limit=68))  # one card, no control characters
+    if name:
+        cards.append(("OBJECT", name, "object name"))
     if m.ra_deg is not None and m.dec_deg is not None:
         cards += [("RA", float(m.ra_deg), "[deg] ICRS"), ("DEC", float(m.dec_deg), "[deg] ICRS")]
     if m.mjd is not None:
@@ -92,8 +98,8 @@ def _meta_cards(spec, medium: str) -> list[tuple[str, object, str]]:
             cards.append((f"OBSGEO-{axis}", float(value.to_value(u.m)), "[m] observatory, geocentric"))
     if m.frame in _SPECSYS:
         cards.append(("SPECSYS", _SPECSYS[m.frame], "velocity frame of the wavelengths"))
-    if m.flux_unit:
-        cards.append(("BUNIT", str(m.flux_unit), "flux unit"))
+    if clean_text(m.flux_unit):
+        cards.append(("BUNIT", ascii(clean_text(m.flux_unit, limit=68)), "flux unit"))
     cards.append(("VACUUM", medium == "vacuum", "wavelengths are in vacuum"))
     cards.append(("AIRORVAC", "air" if medium == "air" else "vac", "wavelength medium"))
     return cards
