@@ -155,13 +155,17 @@ def append_decision(folder: str | os.PathLike, record: dict[str, Any]) -> str:
     """Append one decision to ``folder/decisions.log`` (created if absent); returns the path.
 
     The line is written with a single ``os.write`` on a descriptor opened with ``O_APPEND``
-    and synced, so concurrent sessions never interleave within a line.
+    and synced, so concurrent sessions never interleave within a line; if the file ends in a
+    torn line (a crash mid-write), the new line starts on a line of its own.
     """
     path = Path(folder) / LOG_NAME
     path.parent.mkdir(parents=True, exist_ok=True)
     line = (json.dumps(_ordered(to_jsonable(record)), ensure_ascii=False) + "\n").encode("utf-8")
-    fd = os.open(path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+    fd = os.open(path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o644)
     try:
+        size = os.fstat(fd).st_size
+        if size and os.pread(fd, 1, size - 1) != b"\n":  # a torn last line stays on its own line
+            line = b"\n" + line
         os.write(fd, line)
         os.fsync(fd)
     finally:

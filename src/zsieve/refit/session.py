@@ -984,5 +984,7 @@ def _write_outputs(out_dir: Path, key: str, record: FitResult, shown: FitResult,
     from ..report.figure import write_figure
     from ..report.record import object_path
 
-    write_figure(object_path(out_dir, key, figure_suffix(record)), shown, spectrum)
+    fig_path = object_path(out_dir, key, figure_suffix(record))
+    fig_path.parent.mkdir(parents=True, exist_ok=True)
+    write_figure(fig_path, shown, spectrum)
     update_object(out_dir, key, record, spectrum, figure=False)

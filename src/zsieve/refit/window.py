@@ -390,14 +390,20 @@ class RefitWindow:
             ax.axvline(self.mask_start, color="#c0661e", lw=1.2, ls="--")
         ax.set_xlim(w[0], w[-1])
         ax.set_ylim(lo_y, hi_y)
-        ax.set_xlabel("vacuum wavelength (Angstrom)")
+        ax.set_xlabel("vacuum wavelength (Angstrom)", loc="left")
         ax.set_ylabel(f"flux ({spec.meta.flux_unit})" if spec.meta.flux_unit else "flux")
         name = cur.object_name or spec.meta.object_name or st.item.key
         z_txt = "z = ?" if not math.isfinite(cur.z) else f"z = {cur.z:.5f}" + (
             f" +- {cur.z_err:.5f}" if math.isfinite(cur.z_err) else "")
         who = "person" if (st.recorded.hand and not st.steps) else ("edited" if st.steps else "pipeline")
         ax.set_title(f"{name}   {z_txt}   {st.grade}   {cur.template or ''}   [{who}]", fontsize=11, loc="left")
-        ax.legend(loc="upper left", fontsize=7.5, framealpha=0.7)
+        from matplotlib.patches import Patch
+
+        handles, labels = ax.get_legend_handles_labels()
+        handles += [Patch(color="#d9d9d9"), Patch(color="#cfe3f7"), Patch(facecolor="#f6c28b", hatch="//")]
+        labels += ["bad pixels", "sky (masked)", "your masks"]
+        ax.legend(handles, labels, loc="upper right", bbox_to_anchor=(1.0, -0.045), ncol=5, fontsize=7.5,
+                  frameon=False, borderaxespad=0.0)
 
     def _draw_candidates(self):
         st = self.session.state
@@ -418,8 +424,8 @@ class RefitWindow:
             p = c.probability if math.isfinite(c.probability) else 0.0
             ax.barh(y, 0.2 * p, left=0.78, height=0.45, color=_ABSORPTION, alpha=0.6)
             ax.text(0.985, y, f"{p:.2f}", va="center", ha="right", fontsize=8, family="monospace")
-            here = math.isfinite(cur_z) and abs(c.z - cur_z) <= max(3 * (c.z_err if math.isfinite(c.z_err) else 0),
-                                                                    2e-4 * (1 + c.z))
+            here = (math.isfinite(cur_z) and c.template == st.current.template
+                    and abs(c.z - cur_z) <= max(3 * (c.z_err if math.isfinite(c.z_err) else 0), 2e-4 * (1 + c.z)))
             mark = "*" if here else " "
             cls = _SHORT_CLASS.get(c.template, c.template[:10])
             ax.text(0.01, y, f"{mark}{i + 1:>2} {c.z:8.5f} {cls:<10} {c.n_lines:>2}",
@@ -443,11 +449,18 @@ class RefitWindow:
             if samples.size:
                 ax.hist(samples, bins=30, color="#8fa9c7")
             ax.set_title("bootstrap z values", fontsize=9.5, loc="left")
-        for c in st.candidates:
-            ax.axvline(c.z, color="#5a8fc2", lw=0.6, alpha=0.6)
+        marks = [c.z for c in st.candidates]
+        for z in marks:
+            ax.axvline(z, color=_ABSORPTION, lw=0.6, alpha=0.6)
         if math.isfinite(st.current.z):
-            ax.axvline(st.current.z, color="#c0392b", lw=1.2)
+            ax.axvline(st.current.z, color=_EMISSION, lw=1.3)
+            marks.append(st.current.z)
         ax.axvspan(*st.z_range, color="#f3f3f3", zorder=0)
+        span = [v for v in [*marks, *(zz[[0, -1]] if zz.size else [])] if math.isfinite(v)]
+        if span:
+            lo, hi = min(span), max(span)
+            pad = 0.05 * (hi - lo) + 0.01
+            ax.set_xlim(lo - pad, hi + pad)
         ax.set_xlabel("z", fontsize=8)
         ax.tick_params(labelsize=7)
 
