@@ -25,7 +25,9 @@ Conventions used here
   about the sub-pixel peak position ``p`` (linear interpolation; ``K`` =
   ``sigma_a_halfwidth``, lags with no overlap left out). With this definition
   ``sqrt(2) sigma_a`` is the rms of the noise in ``c``, so ``r`` is the peak height in units
-  of that noise: ``r ~ h`` for a correct match in white noise.
+  of that noise: ``r ~ h`` for a correct match in white noise. Because the weights make that
+  noise 1 by construction, ``sqrt(2) sigma_a`` is floored at ``noise_floor`` (default 1):
+  a peak whose surroundings are too smooth cannot claim more than its height.
 * Peak position and width come from a Gaussian through the three points around the maximum
   (a parabola in ln c; a plain parabola when a point is not positive). ``width_kms`` is the
   FWHM of the correlation peak, ``c d`` km/s per lag.
@@ -367,7 +369,8 @@ def _subpixel(ym, y0, yp):
 def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0.0,
                     z_max: float = 6.0, n_peaks: int = 5, *, apodize: float = 0.05,
                     sigma_a_halfwidth: int = 200, dtype=np.float32, workers: int = -1,
-                    min_overlap: float = 1e-3, block: int = 8, chunk_rows: int = 32,
+                    min_overlap: float = 0.02, noise_floor: float = 1.0, block: int = 8,
+                    chunk_rows: int = 32,
                     curves: bool = False,
                     curve_points: int = 3000) -> PeakArrays:
     """Correlate every row of ``flux2d`` with every template and keep the top peaks.
@@ -401,7 +404,14 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
         Threads for scipy.fft (-1 = all cores).
     min_overlap : float
         Lags where the template's weighted power in the data is below this fraction of its
-        largest value carry no information and are ignored.
+        largest value are ignored: there only a line wing or the template's small zero-mean
+        pedestal meets the data, and a smooth continuum residual would give a peak with
+        almost no antisymmetric part (a huge, meaningless r).
+    noise_floor : float
+        Lower limit of ``sqrt(2) sigma_a`` in ``r``. With the weights ``1/sigma`` the noise of
+        the normalised correlation is known to be 1, so the antisymmetric estimate may only
+        add to it (template mismatch, systematics): ``r = h / max(sqrt(2) sigma_a, floor)``.
+        Set 0 for the plain Tonry-Davis ratio (e.g. with arbitrary weights).
     block : int
         Peaks are looked for one per block of this many lags (at most one peak per block:
         peaks closer than a few lags are one feature).
@@ -518,7 +528,7 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
                                 c[rows, p + 1].astype(float))
             sig_a = _sigma_a(c, vt, p, x, K)
             with np.errstate(invalid="ignore", divide="ignore"):
-                r = h / (np.sqrt(2.0) * sig_a)
+                r = h / np.maximum(np.sqrt(2.0) * sig_a, noise_floor)
             lagf = e_lo + p + x
             good = found & np.isfinite(h) & np.isfinite(r) & (h > 0)
             sl = (slice(r0, r1), t, slice(0, p_take))
