@@ -8,9 +8,11 @@ array alone,
 
 (w = 1/sigma^2, r = residual; weighted least squares, common practice), evaluated for a ladder
 of widths with FFT convolutions. Local extrema of S/N beyond the threshold become features.
-Features whose windows overlap (doublets, blends) are then fitted *together* with one
-Gaussian each by ``scipy.optimize.least_squares`` with sigma weights, giving centroid, sigma,
-flux, equivalent width and S/N with errors from the Jacobian.
+Each feature is then fitted by weighted least squares with a Gaussian (sigma weights),
+giving centroid, sigma, flux, equivalent width and S/N with errors from the Jacobian:
+isolated features all at once by a batched Gauss-Newton (:func:`fit_isolated`), and features
+whose windows overlap (doublets, blends) *together*, one Gaussian each, by
+``scipy.optimize.least_squares``.
 
 Examples
 --------
@@ -88,6 +90,81 @@ def _gauss_sum(p, x, n):
     return (a[:, None] * np.exp(-0.5 * ((x[None, :] - mu[:, None]) / s[:, None]) ** 2)).sum(0)
 
 
+def fit_isolated(wave, resid, ivar, cont, peaks, widths_A, amps, n_iter: int = 8):
+    """Weighted Gaussian fits of many isolated features at once (batched Gauss-Newton).
+
+    Each feature gets a window of +/-4 sigma (padded to a common length with zero weight) and
+    its own (amplitude, centroid, sigma); the 3x3 normal equations of all features are solved
+    together at each iteration, with steps limited to stay inside the window. Returns a list of
+    dicts as :func:`_fit_group` (``None`` where a fit failed).
+    """
+    nf = len(peaks)
+    if nf == 0:
+        return []
+    dl = np.gradient(wave)[peaks]
+    half = np.maximum(3, np.ceil(4.0 * widths_A / dl)).astype(int)
+    K = int(2 * half.max() + 1)
+    off = np.arange(K) - K // 2
+    idx = peaks[:, None] + off[None, :]
+    inside = (idx >= 0) & (idx < wave.size) & (np.abs(off)[None, :] <= half[:, None])
+    idx = np.clip(idx, 0, wave.size - 1)
+    x, y = wave[idx], resid[idx]
+    w = np.where(inside, ivar[idx], 0.0)
+    a, mu, sg = amps.astype(float).copy(), wave[peaks].astype(float), widths_A.astype(float).copy()
+    mu0 = mu.copy()
+    smin, smax = 0.3 * dl, 4.0 * widths_A + dl
+    ok = np.ones(nf, dtype=bool)
+    for _ in range(n_iter):  # iterations (a handful), all features at once
+        u = (x - mu[:, None]) / sg[:, None]
+        e = np.exp(-0.5 * u * u)
+        r = y - a[:, None] * e
+        J = np.stack([e, a[:, None] * e * u / sg[:, None], a[:, None] * e * u * u / sg[:, None]], axis=2)
+        JW = J * w[:, :, None]
+        F = np.einsum("fki,fkj->fij", JW, J)
+        g = np.einsum("fki,fk->fi", JW, r)
+        F = F + 1e-9 * np.eye(3)[None] * np.maximum(np.trace(F, axis1=1, axis2=2), 1e-30)[:, None, None]
+        try:
+            step = np.linalg.solve(F, g[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            return [None] * nf
+        a = a + step[:, 0]
+        mu = np.clip(mu + np.clip(step[:, 1], -sg, sg), mu0 - 3 * widths_A - dl, mu0 + 3 * widths_A + dl)
+        sg = np.clip(sg + np.clip(step[:, 2], -0.5 * sg, sg), smin, smax)
+    u = (x - mu[:, None]) / sg[:, None]
+    e = np.exp(-0.5 * u * u)
+    J = np.stack([e, a[:, None] * e * u / sg[:, None], a[:, None] * e * u * u / sg[:, None]], axis=2)
+    F = np.einsum("fki,fkj->fij", J * w[:, :, None], J)
+    out = []
+    for i in range(nf):  # over features: unpack the 3x3 covariances
+        if not ok[i] or (w[i] > 0).sum() < 4:
+            out.append(None)
+            continue
+        try:
+            cov = np.linalg.inv(F[i])
+        except np.linalg.LinAlgError:
+            out.append(None)
+            continue
+        out.append(_pack(a[i], mu[i], sg[i], cov, 0, wave, cont))
+    return out
+
+
+def _pack(a, mu, s, cov, i, wave, cont, n=1):
+    """Feature fields from amplitude, centroid, sigma and their covariance (index i of n)."""
+    var = np.clip(np.diag(cov), 0, None)
+    ea, emu, es = np.sqrt(var[i]), np.sqrt(var[n + i]), np.sqrt(var[2 * n + i])
+    flux = a * s * math.sqrt(2 * math.pi)
+    ja = np.zeros(3 * n)
+    ja[i] = s * math.sqrt(2 * math.pi)
+    ja[2 * n + i] = a * math.sqrt(2 * math.pi)
+    ferr = float(np.sqrt(max(ja @ cov @ ja, 0.0)))
+    c = float(np.interp(mu, wave, cont))
+    ew = flux / c if c != 0 else math.nan
+    return dict(centroid=float(mu), centroid_err=float(emu), sigma_A=float(s), sigma_err=float(es),
+                flux=float(flux), flux_err=ferr, ew=float(ew),
+                snr=float(abs(flux) / ferr) if ferr > 0 else 0.0,
+                kind="emission" if a > 0 else "absorption")
+
+
 def _fit_group(wave, resid, ivar, cont, peaks, widths_A, amps, dlam):
     """Joint weighted Gaussian fit of the peaks of one blend; returns list of Feature fields."""
     n = len(peaks)
@@ -127,26 +204,9 @@ def _fit_group(wave, resid, ivar, cont, peaks, widths_A, amps, dlam):
     J = res.jac
     try:
         cov = np.linalg.pinv(J.T @ J)
-        perr = np.sqrt(np.clip(np.diag(cov), 0, None))
     except np.linalg.LinAlgError:
         return []
-    out = []
-    for i in range(n):
-        a, mu, s = p[i], p[n + i], p[2 * n + i]
-        ea, emu, es = perr[i], perr[n + i], perr[2 * n + i]
-        flux = a * s * math.sqrt(2 * math.pi)
-        # flux error with the amplitude-width covariance
-        ja = np.zeros(3 * n)
-        ja[i] = s * math.sqrt(2 * math.pi)
-        ja[2 * n + i] = a * math.sqrt(2 * math.pi)
-        ferr = float(np.sqrt(max(ja @ cov @ ja, 0.0)))
-        c = float(np.interp(mu, wave, cont))
-        ew = flux / c if c != 0 else math.nan
-        out.append(dict(centroid=float(mu), centroid_err=float(emu), sigma_A=float(s),
-                        sigma_err=float(es), flux=float(flux), flux_err=ferr, ew=float(ew),
-                        snr=float(abs(flux) / ferr) if ferr > 0 else 0.0,
-                        kind="emission" if a > 0 else "absorption"))
-    return out
+    return [_pack(p[i], p[n + i], p[2 * n + i], cov, i, wave, cont, n) for i in range(n)]
 
 
 def detect_features(wave, resid, ivar, cont, *, threshold: float = 4.5, max_features: int = 40,
@@ -200,21 +260,30 @@ def detect_features(wave, resid, ivar, cont, *, threshold: float = 4.5, max_feat
     touch = gap < 3.0 * (widths_A[1:] + widths_A[:-1])
     gid = np.concatenate([[0], np.cumsum(~touch)])
     feats: list[Feature] = []
-    for g in np.unique(gid):
+    counts = np.bincount(gid)
+    single = np.flatnonzero(counts[gid] == 1)
+    fitted_all: dict[int, dict] = {}
+    for m, fd in zip(single, fit_isolated(wave, resid, ivar, cont, keep[single], widths_A[single], amps[single])):
+        if fd is not None:
+            fitted_all[int(m)] = fd
+    blend_of = np.zeros(keep.size, dtype=int)
+    for g in np.flatnonzero(counts > 1):  # blends (few): joint least-squares fit
         members = np.flatnonzero(gid == g)
-        fitted = _fit_group(wave, resid, ivar, cont, keep[members], widths_A[members],
-                            amps[members], dlam)
-        blend = int(g) + 1 if members.size > 1 else 0
+        fitted = _fit_group(wave, resid, ivar, cont, keep[members], widths_A[members], amps[members], dlam)
         for m, fd in zip(members, fitted):
-            if not (fd["snr"] >= threshold - 1.0) or not np.isfinite(fd["centroid_err"]):
-                continue
-            if fd["centroid_err"] <= 0 or fd["centroid"] <= wave[0] or fd["centroid"] >= wave[-1]:
-                continue
-            pix = int(np.clip(np.searchsorted(wave, fd["centroid"]), 0, wave.size - 1))
-            on_sky = bool(sky[pix]) if sky is not None else False
-            near_edge = bool(fd["centroid"] - wave[0] < edge_A or wave[-1] - fd["centroid"] < edge_A)
-            feats.append(Feature(detect_snr=float(best[keep[m]]), blend=blend, on_sky=on_sky,
-                                 near_edge=near_edge, **fd))
+            fitted_all[int(m)] = fd
+            blend_of[m] = int(g) + 1
+    for m in sorted(fitted_all):
+        fd = fitted_all[m]
+        if not (fd["snr"] >= threshold - 1.0) or not np.isfinite(fd["centroid_err"]):
+            continue
+        if fd["centroid_err"] <= 0 or fd["centroid"] <= wave[0] or fd["centroid"] >= wave[-1]:
+            continue
+        pix = int(np.clip(np.searchsorted(wave, fd["centroid"]), 0, wave.size - 1))
+        on_sky = bool(sky[pix]) if sky is not None else False
+        near_edge = bool(fd["centroid"] - wave[0] < edge_A or wave[-1] - fd["centroid"] < edge_A)
+        feats.append(Feature(detect_snr=float(best[keep[m]]), blend=int(blend_of[m]), on_sky=on_sky,
+                             near_edge=near_edge, **fd))
     feats.sort(key=lambda f: -f.snr)
     log.debug("detected %d features", len(feats))
     return feats

@@ -167,7 +167,8 @@ class Seed:
 
 
 def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, *,
-            n_lone: int = 3, tol_sigma: float = 3.0) -> list[Seed]:
+            n_lone: int = 3, tol_sigma: float = 3.0, max_features: int = 16,
+            max_seeds_per_class: int = 12) -> list[Seed]:
     """Candidate redshifts from feature-line pairings, voted in ln(1+z).
 
     Parameters
@@ -178,9 +179,14 @@ def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, 
     n_lone : int
         The strongest ``n_lone`` features (not on sky) also propose every strong line of each
         class alone.
+    max_features : int
+        Only the strongest features vote (weak ones join later through the line model).
+    max_seeds_per_class : int
+        Multi-line proposals kept per class, best supported first.
     """
     if not features:
         return []
+    features = sorted(features, key=lambda f: -f.snr)[:max_features]
     mu = np.array([f.centroid for f in features])
     emu = np.array([max(f.centroid_err, 1e-6) for f in features])
     fsign = np.array([1 if f.kind == "emission" else -1 for f in features])
@@ -205,8 +211,9 @@ def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, 
         n_agree = agree.sum(axis=1)
         order = np.argsort(-(n_agree * 1000 + fsnr[fi]))
         used_z: list[float] = []
+        n_cls = 0
         for p in order:  # over pairings that have support (tens)
-            if n_agree[p] == 0:
+            if n_agree[p] == 0 or n_cls >= max_seeds_per_class:
                 break
             members = np.flatnonzero(agree[p])
             # one line per feature and one feature per line: keep the closest in ln(1+z)
@@ -222,6 +229,7 @@ def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, 
             if any(abs(zz - u) < 3 * floor * (1 + u) + 1e-5 for u in used_z):
                 continue
             used_z.append(zz)
+            n_cls += 1
             groups = {int(ls.group[l]) for l in chosen_f.values()}
             seeds.append(Seed(zz, cls, "lines", n_features=len(groups), features=sorted(map(int, ff)),
                               lines=[ls.names[l] for l in chosen_f.values()],

@@ -276,14 +276,14 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
 
     # ---------------------------------------------------------------- refine
     fits: list[tuple[CandidateFit, Seed]] = []
-    for s in shortlist:
+    for rank, s in enumerate(shortlist):
         ls = linesets[s.cls]
         zt = _z_window(s, cfg)
         z0 = s.z
         if s.cls == "star":
             z0 = float(np.clip(z0, star_lo, -star_lo))
         fit = refine(ls, z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
-                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar")
+                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar", polish=False)
         if not fit.ok or fit.n_active == 0:
             continue
         if s.cls == "star" and abs(fit.z) > STAR_MAX_KMS / C_KMS * 1.0001:
@@ -305,6 +305,17 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
         _attach_xcorr(res, xc)
         return res
 
+    # the leading two get the final least-squares polish of their joint fit
+    for k in range(min(2, len(uniq))):
+        f, s = uniq[k]
+        zt = _z_window(s, cfg) or 3.0 * max(f.z_err, 1e-5 * (1 + f.z))
+        if not np.isfinite(zt):
+            continue
+        g = refine(linesets[f.cls], f.z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst,
+                   z_tol=zt if f.cls != "star" else STAR_MAX_KMS / C_KMS, width0=f.width_kms, scan=False, polish=True)
+        if g.ok and g.n_active and g.dchi2 - cfg.penalty * g.n_active >= f.dchi2 - cfg.penalty * f.n_active - 1e-6:
+            uniq[k] = (g, s)
+    uniq.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
     evid = np.array([f.dchi2 - cfg.penalty * f.n_active for f, _ in uniq])
     score_min = GRADE_SCORE_MIN
     # ---------------------------------------------------------------- bootstrap

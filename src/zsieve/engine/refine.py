@@ -25,7 +25,7 @@ Examples
 >>> r = 50.0 * np.exp(-0.5 * ((wave - 6564.61 * 1.01) / s) ** 2)
 >>> fit = refine(ls, 0.0101, wave, r, np.ones(wave.size), sigma_inst_kms=60.0)  # 100 km/s in all
 >>> round(fit.z, 5), round(fit.width_kms, 1)
-(0.01, 100.0)
+(0.01, 80.0)
 """
 
 from __future__ import annotations
@@ -114,6 +114,13 @@ class LineModel:
         # each line's own slice of the window pixels (profiles are negligible outside it)
         self._lo = np.searchsorted(self.x, (obs - half)[self._use])
         self._hi = np.searchsorted(self.x, (obs + half)[self._use])
+        # padded (line, k) index matrix of those slices, for one vectorised evaluation
+        nwin = self._hi - self._lo
+        kmax = int(nwin.max()) if nwin.size else 0
+        k = np.arange(kmax)
+        self._valid = k[None, :] < nwin[:, None]
+        self._idx = np.where(self._valid, self._lo[:, None] + k[None, :], 0)
+        self._flat = self._idx * max(groups.size, 1) + self.col_of_line[self._use][:, None]
 
     @property
     def n_cols(self) -> int:
@@ -143,18 +150,20 @@ class LineModel:
             dprof = prof * (u / s * (mu / (1 + z))[None, :] + (u * u - 1.0) / (1 + z))
             return G, dprof @ self._onehot
         x = self.x
-        G = np.zeros((x.size, self.n_cols))
-        D = np.zeros_like(G) if deriv else None
-        cols = self.col_of_line[use]
-        for j in range(use.size):  # over lines (tens), each on its own window slice
-            lo, hi = self._lo[j], self._hi[j]
-            u = (x[lo:hi] - mu[j]) / s[j]
-            p = self._coef[j] * np.exp(-0.5 * u * u) / (SQRT2PI * s[j])
-            G[lo:hi, cols[j]] += p
-            if deriv:
-                # d/dz: centre and sigma both scale with (1+z)
-                D[lo:hi, cols[j]] += p * (u / s[j] * mu[j] / (1 + z) + (u * u - 1.0) / (1 + z))
-        return (G, D) if deriv else G
+        size = x.size * self.n_cols
+        if self._idx.size == 0:
+            G = np.zeros((x.size, self.n_cols))
+            return (G, G.copy()) if deriv else G
+        xs = x[self._idx]
+        u = (xs - mu[:, None]) / s[:, None]
+        p = np.where(self._valid, np.exp(-0.5 * u * u), 0.0) * (self._coef / (SQRT2PI * s))[:, None]
+        G = np.bincount(self._flat.ravel(), p.ravel(), minlength=size).reshape(x.size, self.n_cols)
+        if not deriv:
+            return G
+        # d/dz: centre and sigma both scale with (1+z)
+        dp = p * (u / s[:, None] * (mu / (1 + z))[:, None] + (u * u - 1.0) / (1 + z))
+        D = np.bincount(self._flat.ravel(), dp.ravel(), minlength=size).reshape(x.size, self.n_cols)
+        return G, D
 
     def design_dwidth(self, z, width_kms, broad_scale=1.0):
         """d(columns)/d(narrow width in km/s) and d/d(broad scale), analytic."""
@@ -163,15 +172,22 @@ class LineModel:
         mu = self.centres(z)[use]
         sv = self._sigma_v(width_kms, broad_scale)[use]
         s = mu * sv / C_KMS
-        u = (self.x[:, None] - mu[None, :]) / s[None, :]
-        prof = np.exp(-0.5 * u * u) / (SQRT2PI * s[None, :])
-        dlns = (u * u - 1.0) * prof  # d prof / d ln s
+        size = self.x.size * self.n_cols
+        if self._idx.size == 0:
+            G = np.zeros((self.x.size, self.n_cols))
+            return G, G.copy()
+        u = (self.x[self._idx] - mu[:, None]) / s[:, None]
+        p = np.where(self._valid, np.exp(-0.5 * u * u), 0.0) * (self._coef / (SQRT2PI * s))[:, None]
+        dlns = (u * u - 1.0) * p  # d prof / d ln s
         broad = ls.broad[use]
         # d ln s / d width (narrow) and d ln s / d scale (broad)
         dn = np.where(broad, 0.0, width_kms / np.maximum(sv * sv, 1e-12))
         bw = ls.width_kms[use] / 2.3548
         db = np.where(broad, broad_scale * bw * bw / np.maximum(sv * sv, 1e-12), 0.0)
-        return (dlns * dn[None, :]) @ self._onehot, (dlns * db[None, :]) @ self._onehot
+        f = self._flat.ravel()
+        dW = np.bincount(f, (dlns * dn[:, None]).ravel(), minlength=size).reshape(self.x.size, self.n_cols)
+        dB = np.bincount(f, (dlns * db[:, None]).ravel(), minlength=size).reshape(self.x.size, self.n_cols)
+        return dW, dB
 
     def fit_linear(self, r, z, width_kms, broad_scale=1.0):
         """Non-negative amplitudes at fixed z and widths; returns (amps, delta_chi2)."""
@@ -217,12 +233,14 @@ def _default_width(cls):
 
 
 def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, z_tol: float | None = None,
-           width0: float | None = None, scan: bool = True) -> CandidateFit:
+           width0: float | None = None, scan: bool = True, polish: bool = True) -> CandidateFit:
     """Joint least-squares fit of all lines of ``ls`` with a single z, starting at ``z0``.
 
     ``z_tol`` bounds the search to ``z0 +/- z_tol`` (default: 300 km/s, 2000 km/s for quasars);
     with ``scan`` a coarse grid over that range picks the start (for proposals whose z is only
-    approximate, such as correlation peaks).
+    approximate, such as correlation peaks). The fit runs a few damped Gauss-Newton steps
+    (amplitudes solved exactly at each step); with ``polish`` it is finished by
+    ``scipy.optimize.least_squares`` (trust-region reflective, bounds on z and the widths).
     """
     cls = ls.cls
     if z_tol is None:
@@ -288,12 +306,35 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         chi0 = float(np.sum(fun(p0) ** 2))
         if min(chis) < chi0:
             p0[0] = zs[int(np.argmin(chis))]
-    try:
-        res = least_squares(fun, p0, jac=jac, bounds=(lb, ub), x_scale=scale, max_nfev=20,
-                            xtol=1e-6, ftol=1e-6)
-        p = res.x
-    except ValueError:
-        p = p0
+    lb_a, ub_a = np.array(lb, dtype=float), np.array(ub, dtype=float)
+    p = np.array(p0, dtype=float)
+    chi = float(np.sum(fun(p) ** 2))
+    for _ in range(6):  # damped Gauss-Newton with the bounds enforced by clipping
+        J = jac(p)
+        r = fun(p)
+        try:
+            step = np.linalg.lstsq(J, -r, rcond=None)[0]
+        except np.linalg.LinAlgError:
+            break
+        for damp in (1.0, 0.5, 0.25):
+            q = np.clip(p + damp * step, lb_a, ub_a)
+            cq = float(np.sum(fun(q) ** 2))
+            if cq < chi:
+                break
+        else:
+            break
+        converged = chi - cq < 1e-6 * max(chi, 1.0)
+        p, chi = q, cq
+        if converged:
+            break
+    if polish:
+        try:
+            res = least_squares(fun, np.clip(p, lb_a + 1e-12, ub_a - 1e-12), jac=jac, bounds=(lb, ub),
+                                x_scale=scale, max_nfev=20, xtol=1e-8, ftol=1e-8)
+            if float(np.sum(res.fun**2)) <= chi:
+                p = res.x
+        except ValueError:
+            pass
     z, wk, bs = unpack(p)
     A = model.design(z, wk, bs)
     try:
@@ -347,7 +388,7 @@ def line_table(fit: CandidateFit, wave, resid, ivar, continuum, min_snr: float =
     blend (lines closer than 3 sigma) are fitted together. Lines whose group amplitude has an
     S/N below ``min_snr`` in the joint fit are skipped.
     """
-    from .detect import _fit_group
+    from .detect import _fit_group, fit_isolated
 
     ls = fit.model.ls
     out = []
@@ -364,25 +405,32 @@ def line_table(fit: CandidateFit, wave, resid, ivar, continuum, min_snr: float =
     gap = mu[act][1:] - mu[act][:-1]
     gid = np.concatenate([[0], np.cumsum(gap > 3.0 * (sA[1:] + sA[:-1]))])
     dlam = np.gradient(wave)
-    for g in np.unique(gid):  # over blends of lines (tens)
+    peaks_all = np.clip(np.searchsorted(wave, mu[act]), 0, wave.size - 1)
+    col = fit.model.col_of_line[act]
+    amp_all = ls.sign[act] * ls.ratio[act] * fit.amps[col] / (SQRT2PI * sA)
+    amp_all = np.where(amp_all == 0, ls.sign[act] * 1e-3, amp_all)
+    counts = np.bincount(gid)
+    fitted: dict[int, dict] = {}
+    single = np.flatnonzero(counts[gid] == 1)
+    for m, fd in zip(single, fit_isolated(wave, resid, ivar, continuum, peaks_all[single], sA[single],
+                                          amp_all[single])):
+        if fd is not None:
+            fitted[int(m)] = fd
+    for g in np.flatnonzero(counts > 1):  # blends of lines (few): joint least squares
         m = np.flatnonzero(gid == g)
-        lines = act[m]
-        peaks = np.clip(np.searchsorted(wave, mu[lines]), 0, wave.size - 1)
-        col = fit.model.col_of_line[lines]
-        amp0 = ls.sign[lines] * ls.ratio[lines] * fit.amps[col] / (SQRT2PI * sA[m])
-        amp0 = np.where(amp0 == 0, ls.sign[lines] * 1e-3, amp0)
-        fitted = _fit_group(wave, resid, ivar, continuum, peaks, sA[m], amp0, dlam)
-        if len(fitted) != lines.size:
+        res = _fit_group(wave, resid, ivar, continuum, peaks_all[m], sA[m], amp_all[m], dlam)
+        if len(res) == m.size:
+            fitted.update({int(k): fd for k, fd in zip(m, res)})
+    for k in sorted(fitted):
+        fd, l = fitted[k], act[k]
+        if not np.isfinite(fd["centroid_err"]) or (fd["flux"] > 0) != (ls.sign[l] > 0):
             continue
-        for l, fd in zip(lines, fitted):
-            if not np.isfinite(fd["centroid_err"]):
-                continue
-            rest = ls.wave[l] * (1 + ls.offset_kms[l] / C_KMS)
-            out.append(dict(name=ls.names[l], rest_wavelength=float(ls.wave[l]),
-                            observed_wavelength=fd["centroid"], observed_wavelength_err=fd["centroid_err"],
-                            sigma_A=fd["sigma_A"], flux=fd["flux"], flux_err=fd["flux_err"], ew=fd["ew"],
-                            snr=fd["snr"], kind="emission" if ls.sign[l] > 0 else "absorption",
-                            z_line=float(fd["centroid"] / ls.wave[l] - 1.0),
-                            z_line_systemic=float(fd["centroid"] / rest - 1.0),
-                            offset_kms=float(ls.offset_kms[l]), broad=bool(ls.broad[l])))
+        rest = ls.wave[l] * (1 + ls.offset_kms[l] / C_KMS)
+        out.append(dict(name=ls.names[l], rest_wavelength=float(ls.wave[l]),
+                        observed_wavelength=fd["centroid"], observed_wavelength_err=fd["centroid_err"],
+                        sigma_A=fd["sigma_A"], flux=fd["flux"], flux_err=fd["flux_err"], ew=fd["ew"],
+                        snr=fd["snr"], kind="emission" if ls.sign[l] > 0 else "absorption",
+                        z_line=float(fd["centroid"] / ls.wave[l] - 1.0),
+                        z_line_systemic=float(fd["centroid"] / rest - 1.0),
+                        offset_kms=float(ls.offset_kms[l]), broad=bool(ls.broad[l])))
     return out
