@@ -261,3 +261,31 @@ def test_snapshot_png_is_written_and_not_blank(folder, tmp_path):
     grey = img[..., :3].mean(axis=2)
     assert grey.std() > 0.05  # not a blank canvas
     assert (grey < 0.3).mean() > 0.005  # ink: data, labels and text
+
+
+# ----------------------------------------------------------------------------- moving around
+def test_skip_back_and_accept_move_through_the_objects(folder):
+    session = RefitSession.from_folder(folder, include_all=True)
+    assert [it.key for it in session.items] == ["CDX-0042.fits", "CDX-0043.fits"]
+    win = _window(session)
+    _key(win, "j")  # skip: nothing written
+    assert session.position == 1 and not (folder / "decisions.log").exists()
+    _key(win, "b")
+    assert session.position == 0
+    _key(win, "a")  # accept what is shown: an approval is recorded, then the next object
+    assert session.position == 1
+    rec = read_decisions(folder)[-1]
+    assert rec["action"] == "approve" and rec["key"] == "CDX-0042.fits"
+    assert rec["z"] == pytest.approx(rec["previous_z"])
+
+
+def test_an_unreadable_input_is_passed_over(batch, tmp_path):
+    dest = tmp_path / "out"
+    shutil.copytree(batch["out"], dest)
+    rec_path = dest / "objects" / "CDX-0042.fits.json"
+    rec = json.loads(rec_path.read_text())
+    rec["file"] = str(tmp_path / "gone.fits")
+    rec["provenance"]["path"] = rec["provenance"]["input"] = str(tmp_path / "gone.fits")
+    rec_path.write_text(json.dumps(rec))
+    session = RefitSession.from_folder(dest, include_all=True)
+    assert session.item.key == "CDX-0043.fits"

@@ -108,7 +108,11 @@ def run(args) -> int:
     if args.snapshot:
         from ..refit.window import snapshot
 
-        path = snapshot(session, args.snapshot, show_help=args.snapshot_help)
+        try:
+            path = snapshot(session, args.snapshot, show_help=args.snapshot_help)
+        except (ZsieveError, OSError) as exc:
+            print(f"zsieve inspect: no snapshot: {exc}", file=sys.stderr)
+            return 2
         print(f"snapshot of {session.item.key} written to {path}")
         return 0
     import matplotlib

@@ -223,7 +223,8 @@ class RefitSession:
         self._linelist = None
         self._prepared = None
         self._state: ObjectState | None = None
-        self._open(0)
+        if not self._open_readable(0, +1):
+            raise ZsieveError("nothing to inspect: none of the selected spectra could be read")
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -743,12 +744,32 @@ class RefitSession:
         return rec
 
     def _move(self, step: int) -> None:
-        new = self.position + step
+        here = self.position
+        new = here + step
         if new >= len(self.items):
             self.finished = True
             self.message = "that was the last object"
             return
-        self._open(max(new, 0))
+        if not self._open_readable(max(new, 0), step):
+            if step > 0:
+                self.finished = True
+                self.message = "no readable object after this one"
+            else:
+                self._open(here)
+                self.message = "no readable object before this one"
+
+    def _open_readable(self, position: int, step: int) -> bool:
+        """Open the first object from ``position`` on (in direction ``step``) whose spectrum can
+        be read; an unreadable one is logged and passed over. False if there is none."""
+        while 0 <= position < len(self.items):
+            try:
+                self._open(position)
+                _ = self.spectrum
+                return True
+            except SpectrumFileError as exc:
+                log.warning("passed over %s: %s", self.items[position].key, exc)
+                position += 1 if step >= 0 else -1
+        return False
 
     # ------------------------------------------------------------------ saving
     def decision(self) -> dict[str, Any] | None:
