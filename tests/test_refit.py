@@ -8,7 +8,8 @@ module; each test works on its own copy of that folder.
 
 Outside references: the NIST Atomic Spectra Database vacuum wavelength of H-alpha,
 6564.61 A (from memory); 1 + z = lambda_obs / lambda_rest (the definition of redshift,
-common practice); the login name from the standard library's ``getpass.getuser``.
+common practice); the login name from the standard library's ``getpass.getuser``; the
+luminosity distance of astropy.cosmology's Planck18 (Planck 2018 results VI).
 """
 
 from __future__ import annotations
@@ -218,7 +219,13 @@ def test_a_saved_decision_survives_a_later_fit(batch, folder):
     session.set_grade("likely", "H-alpha: [N II] too faint to see")
     rec = session.save()
     z_hand = rec["z"]
-    assert _summary_row(folder, "CDX-0042.fits")["hand"] == "True"
+    row = _summary_row(folder, "CDX-0042.fits")
+    assert row["hand"] == "True"
+    # the distances follow the person's z: astropy's Planck 2018 cosmology, the batch default
+    from astropy.cosmology import Planck18
+
+    d_l = Planck18.luminosity_distance(z_hand).to_value("Mpc")
+    assert float(row["lum_distance"]) == pytest.approx(d_l, rel=1e-3)
     log_before = (folder / "decisions.log").read_text()
     # an unchanged rerun reuses the record; a forced rerun measures again; both keep the decision
     for extra in ([], ["--force"]):
@@ -226,6 +233,7 @@ def test_a_saved_decision_survives_a_later_fit(batch, folder):
         row = _summary_row(folder, "CDX-0042.fits")
         assert row["hand"] == "True", extra
         assert float(row["z"]) == pytest.approx(z_hand) and row["grade"] == "likely"
+        assert float(row["lum_distance"]) == pytest.approx(d_l, rel=1e-3)
         assert (folder / "decisions.log").read_text() == log_before  # the log is never rewritten
     # the session then leaves it out by default: it has been decided
     with pytest.raises(Exception, match="no objects"):
