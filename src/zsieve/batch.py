@@ -406,11 +406,15 @@ def _figure_only(ctx: _Context, item: InputFile, keys: list[str]) -> list[dict[s
 _CTX: _Context | None = None
 
 
-def _init_worker(ctx: _Context, level: int) -> None:
+def _init_worker(ctx: _Context, level: int, pool_worker: bool = True) -> None:
     global _CTX
     _CTX = ctx
     logging.getLogger("zsieve").setLevel(level)
     os.environ.setdefault("MPLBACKEND", "Agg")
+    if pool_worker:  # Ctrl-C reaches the whole process group: the parent alone winds the run down
+        import signal
+
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _run_task(task: tuple) -> list[dict[str, Any]]:
@@ -606,10 +610,15 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
         touched: set[str] = set()
         last_checkpoint = [time.monotonic()]
 
+        interval = [settings.checkpoint_s]
+
         def checkpoint(final: bool = False):
+            t = time.monotonic()
             write_summary(out_dir, rows.values(), meta)
             write_index(out_dir, rows.values())
             last_checkpoint[0] = time.monotonic()
+            # big folders: keep the checkpoints' share of the run time small (about 5% at most)
+            interval[0] = max(settings.checkpoint_s, 20.0 * (last_checkpoint[0] - t))
             if not final:
                 log.info("checkpoint: %d rows in %s", len(rows), out_dir)
 
@@ -619,7 +628,7 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
                 touched.add(r["key"])
                 if on_row:
                     on_row(r)
-            if time.monotonic() - last_checkpoint[0] > settings.checkpoint_s:
+            if time.monotonic() - last_checkpoint[0] > interval[0]:
                 checkpoint()
 
         def tasks() -> Iterator[tuple]:
@@ -666,7 +675,7 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
         bar = _progress_bar(settings.progress, lambda: sum(1 for _ in discover(paths, exclude=[str(out_dir)], root=root)))
         try:
             if settings.jobs <= 1:
-                _init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel())
+                _init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel(), pool_worker=False)
                 for task in tasks():
                     if task is not None:
                         take(_run_task(task))

@@ -216,11 +216,19 @@ def run(args) -> int:
     except _ArgError as exc:
         print(f"zsieve fit: {exc}", file=sys.stderr)
         return 2
+    import signal
+
+    def _terminate(signum, frame):  # `kill` winds down like Ctrl-C: records kept, summary written
+        raise KeyboardInterrupt
+
+    previous = signal.signal(signal.SIGTERM, _terminate)
     try:
         summary = run_batch(args.paths, args.out, settings)
     except BatchError as exc:
         print(f"zsieve fit: {exc}", file=sys.stderr)
         return 2
+    finally:
+        signal.signal(signal.SIGTERM, previous)
     print(summary.line())
     if summary.interrupted:
         return 130
