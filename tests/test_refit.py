@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 
 from zsieve.cli import main as zsieve_main
-from zsieve.refit.decisions import read_decisions
+from zsieve.refit.decisions import in_force, read_decisions
 from zsieve.refit.session import RefitSession
 from zsieve.refit.window import BINDINGS, RefitWindow
 
@@ -280,6 +280,13 @@ def test_skip_back_and_accept_move_through_the_objects(folder):
     assert session.position == 1 and not (folder / "decisions.log").exists()
     _key(win, "b")
     assert session.position == 0
+    # a click on the second row of the candidate panel highlights that candidate
+    from matplotlib.backend_bases import MouseEvent
+
+    x, y = win.ax_cand.transData.transform((0.5, 1.5))
+    win.fig.canvas.callbacks.process("button_press_event",
+                                     MouseEvent("button_press_event", win.fig.canvas, x, y, button=1))
+    assert session.state.cursor == 1
     _key(win, "a")  # accept what is shown: an approval is recorded, then the next object
     assert session.position == 1
     rec = read_decisions(folder)[-1]
@@ -297,3 +304,36 @@ def test_an_unreadable_input_is_passed_over(batch, tmp_path):
     rec_path.write_text(json.dumps(rec))
     session = RefitSession.from_folder(dest, include_all=True)
     assert session.item.key == "CDX-0043.fits"
+
+
+def test_a_withdrawn_decision_gives_back_the_automatic_answer(folder):
+    session = RefitSession.from_folder(folder, name="*0043*", include_all=True)
+    win = _window(session)
+    auto_z = session.result.z
+    session.set_z(0.31)
+    session.save()
+    assert _summary_row(folder, "CDX-0043.fits")["hand"] == "True"
+    session.back()  # the only object: stays
+    _key(win, "W")
+    row = _summary_row(folder, "CDX-0043.fits")
+    assert row["hand"] == "False" and float(row["z"]) == pytest.approx(auto_z)
+    recs = read_decisions(folder)
+    assert [r["action"] for r in recs] == ["type-z", "undo"]
+    assert "CDX-0043.fits" not in in_force(recs)
+
+
+def test_selection_by_grade_flag_and_name(folder):
+    from zsieve.refit.session import select_items
+
+    everything = select_items(folder, include_all=True)
+    grades = {it.key: it.result.grade for it in everything}
+    flags = {it.key: set(it.result.flags) for it in everything}
+    default = {it.key for it in select_items(folder)}
+    assert default == {k for k, g in grades.items() if g != "secure"}
+    for g in set(grades.values()):
+        assert {it.key for it in select_items(folder, grades=[g])} == {k for k, v in grades.items() if v == g}
+    some_flag = next((f for fs in flags.values() for f in fs), None)
+    if some_flag is not None:
+        got = {it.key for it in select_items(folder, flags=[some_flag], include_all=True)}
+        assert got == {k for k, fs in flags.items() if some_flag in fs}
+    assert [it.key for it in select_items(folder, name="cdx-0043*", include_all=True)] == ["CDX-0043.fits"]

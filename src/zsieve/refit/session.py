@@ -849,6 +849,32 @@ class RefitSession:
         self.message = f"saved: z = {cur.z:.5f}, {st.grade}"
         return rec
 
+    def withdraw(self) -> dict[str, Any] | None:
+        """Withdraw the person's decision on record for this object: an ``undo`` line in the
+        log, and the record, figure and summary back to the automatic answer."""
+        st = self.state
+        before = st.recorded
+        if not before.hand:
+            self.message = "no decision on record to withdraw"
+            return None
+        shown = in_force_result(before)
+        rec = _dec.make_decision(
+            key=st.item.key, file=st.item.file, index=st.item.index, action="undo", z=before.z,
+            z_err=before.z_err, grade=before.grade or "none", template=before.template,
+            previous_z=shown.z, previous_grade=shown.grade, previous_template=shown.template,
+            comment=st.comment, user=self.user, changes=["decision withdrawn: back to the automatic answer"],
+        )
+        final = before.replace(hand=None)
+        self.decisions.append(rec)
+        if self.out_dir is not None:
+            _dec.append_decision(self.out_dir, rec)
+            st.masks, st.mask_sky = [], True
+            _write_outputs(self.out_dir, st.item.key, final, self.display_result(final), self.spectrum)
+        st.item.result = final
+        self._open(self.position)
+        self.message = f"decision withdrawn: z = {final.z:.5f}, {final.grade} (automatic)"
+        return rec
+
     # ------------------------------------------------------------------ what to draw
     def expected_lines(self) -> list[tuple[str, float, str, float]]:
         """Lines expected at the current z inside the data: ``(name, observed, kind, strength)``."""

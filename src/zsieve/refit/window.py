@@ -55,6 +55,7 @@ BINDINGS: dict[str, tuple[str, str]] = {
     "j": ("skip", "skip to the next object (nothing saved)"),
     "b": ("back", "back to the previous object"),
     "Z": ("revert", "drop the unsaved changes of this object"),
+    "W": ("withdraw", "withdraw the decision on record (back to the automatic answer)"),
     "x": ("quit", "end the session (unsaved changes are dropped)"),
     "escape": ("cancel", "cancel a prompt, a half-made mask or the pin"),
 }
@@ -297,6 +298,9 @@ class RefitWindow:
 
     def _do_revert(self, event):
         self.session.revert()
+
+    def _do_withdraw(self, event):
+        self.session.withdraw()
 
     def _do_quit(self, event):
         self.session.finished = True
