@@ -370,7 +370,7 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
                     z_max: float = 6.0, n_peaks: int = 5, *, apodize: float = 0.05,
                     sigma_a_halfwidth: int = 200, dtype=np.float32, workers: int = -1,
                     min_overlap: float = 0.02, noise_floor: float = 1.0, block: int = 8,
-                    chunk_rows: int = 32,
+                    chunk_rows: int = 100,
                     curves: bool = False,
                     curve_points: int = 3000) -> PeakArrays:
     """Correlate every row of ``flux2d`` with every template and keep the top peaks.
