@@ -337,3 +337,19 @@ def test_selection_by_grade_flag_and_name(folder):
         got = {it.key for it in select_items(folder, flags=[some_flag], include_all=True)}
         assert got == {k for k, fs in flags.items() if some_flag in fs}
     assert [it.key for it in select_items(folder, name="cdx-0043*", include_all=True)] == ["CDX-0043.fits"]
+
+
+def test_rerunning_the_bootstrap_keeps_the_choice_and_draws_afresh(folder):
+    session = RefitSession.from_folder(folder, name="*0042*", include_all=True)
+    win = _window(session)
+    session.pin(H_ALPHA_VAC * 1.14)
+    session.name_line("ha")
+    first = session.result
+    seed = session.state.seed
+    _key(win, "e")
+    again = session.result
+    assert session.state.seed == seed + 1 and again.seed == seed + 1
+    assert again.template == first.template and 0 < len(again.z_samples) <= again.n_resamples
+    # the same choice: the two bootstrap medians agree within their spreads (common practice)
+    assert abs(again.z - first.z) <= 3 * max(first.z_err, again.z_err)
+    assert session.state.steps[-1][0] == "bootstrap"

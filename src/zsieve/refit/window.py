@@ -76,7 +76,7 @@ def help_text() -> str:
     >>> "adopt the highlighted candidate" in help_text()
     True
     """
-    rows = [f"{k:>7}  {what}" for k, (_, what) in BINDINGS.items()]
+    rows = [f"{k:>10}  {what}" for k, (_, what) in BINDINGS.items()]
     rows += [f"{k:>10}  {what}" for k, what in _CLICK_HELP]
     return "keys and clicks\n\n" + "\n".join(rows)
 
