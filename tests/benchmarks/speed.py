@@ -10,6 +10,9 @@ step and the mocks' resolution):
 * ``zsieve xcorr stage (201 rows)`` / ``(1 row)`` - zsieve's own preparation and the batched
   Tonry-Davis correlation of the data plus 200 noise resamples (:func:`correlate_peaks`), and
   of the data alone: the correlation stage by itself;
+* ``bare FFTs only (201 rows)`` - the preparation and just the transforms (one rfft of the
+  201 rows, one irfft per template): the floor under any FFT correlation of these rows, to
+  show what the xcorr stage adds (no z, so no accuracy);
 * ``specutils route (direct|fft)`` - the same preparation, then
   ``specutils.analysis.correlation.template_correlate`` with each template, the best peak per
   template inside the z range (3-point parabola on the peak, common practice) and the best
@@ -110,6 +113,25 @@ def route_xcorr(spec, n_rows, resolution_kms):
     return float(res.z[0, t[0], p[0]]) if t[0] >= 0 else float("nan")
 
 
+def route_fft_floor(spec, n_rows, resolution_kms):
+    """Only the transforms any FFT correlation of these rows must do: one batched rfft of the
+    rows and one batched irfft per template, at the FFT length the xcorr stage uses."""
+    from scipy import fft as sfft
+
+    from zsieve.engine.correlate import lag_window
+
+    grid, f, w = _prepared(spec)
+    bank = _bank(grid, resolution_kms)
+    n = lag_window(f.size, grid, bank, Z_LO, Z_HI)[-1]
+    ft, _ = bank.spectra(n)
+    x = np.zeros((n_rows, n), np.float32)
+    x[:, :f.size] = f
+    fx = sfft.rfft(x, axis=-1)
+    for t in range(ft.shape[0]):
+        sfft.irfft(fx * ft[t], n=n, axis=-1)
+    return float("nan")
+
+
 def route_specutils(spec, method, resolution_kms):
     import astropy.units as u
     from astropy.nddata import StdDevUncertainty
@@ -184,6 +206,7 @@ ROUTES = {
     "zsieve measure (no resampling)": lambda s, r: route_measure(s, 0),
     "zsieve xcorr stage (201 rows)": lambda s, r: route_xcorr(s, 201, r),
     "zsieve xcorr stage (1 row)": lambda s, r: route_xcorr(s, 1, r),
+    "bare FFTs only (201 rows)": lambda s, r: route_fft_floor(s, 201, r),
     "specutils route (fft)": lambda s, r: route_specutils(s, "fft", r),
     "specutils route (direct)": lambda s, r: route_specutils(s, "direct", r),
     "brute chi2 grid": lambda s, r: route_chi2(s, r),

@@ -71,6 +71,7 @@ __all__ = [
     "correlate_peaks",
     "correlate_batch",
     "correlation_curves",
+    "lag_window",
     "td_sigma_z",
     "td_sigma_v",
     "lag_to_z",
@@ -366,6 +367,35 @@ def _subpixel(ym, y0, yp):
     return x, h, s
 
 
+def lag_window(n_data: int, grid, bank: TemplateBank, z_min: float, z_max: float, *,
+               sigma_a_halfwidth: int = 200, block: int = 8):
+    """Lags and FFT length of a correlation over ``z_min .. z_max``.
+
+    Returns ``(k_lo, k_hi, e_lo, e_hi, t_lo, t_hi, nfft)``: the lags of the z range; the
+    extended window computed around it (room for the peak fit, the ``sigma_a`` window and
+    the last peak block); the part of that window where template and data overlap at all;
+    and the shortest fast FFT length for which those overlapping lags do not wrap around
+    (``nfft >= t_hi + n_template`` and ``nfft >= n_data - t_lo``; lags outside ``t_lo..t_hi``
+    are ignored, so they may wrap). ``None`` if no lag of the z range overlaps the data.
+    """
+    g = LogGrid.from_any(grid, n_data)
+    d = g.dloglam
+    delta0 = g.loglam0 - bank.loglam0
+    k_lo = int(np.ceil((np.log1p(z_min) - delta0) / d - 1e-9))
+    k_hi = int(np.floor((np.log1p(z_max) - delta0) / d + 1e-9))
+    k_min, k_max = -(bank.n_pix - 1), n_data - 1  # lags with any overlap at all
+    k_lo, k_hi = max(k_lo, k_min + 1), min(k_hi, k_max - 1)
+    if k_hi < k_lo:
+        return None
+    K, blk = int(sigma_a_halfwidth), max(1, int(block))
+    e_lo, e_hi = k_lo - K - 2, k_hi + K + 2 + blk
+    t_lo, t_hi = max(e_lo, k_min), min(e_hi, k_max)
+    n_win = e_hi - e_lo + 1
+    nfft = sfft.next_fast_len(max(t_hi + bank.n_pix, n_data - t_lo, n_data, bank.n_pix, n_win),
+                              real=True)
+    return k_lo, k_hi, e_lo, e_hi, t_lo, t_hi, nfft
+
+
 def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0.0,
                     z_max: float = 6.0, n_peaks: int = 5, *, apodize: float = 0.05,
                     sigma_a_halfwidth: int = 200, dtype=np.float32, workers: int = -1,
@@ -444,7 +474,6 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
         raise ValueError(f"grid step {g.dloglam:.6g} differs from the template step {bank.dloglam:.6g}")
     d = g.dloglam
     n_t = len(bank.classes)
-    n_tpl = bank.n_pix
     K = int(sigma_a_halfwidth)
 
     w = np.where(np.isfinite(weight) & (weight > 0), weight, 0.0)
@@ -463,23 +492,16 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
     if den_in.ndim == 2 and np.array_equal(den_in, np.broadcast_to(den_in[0], den_in.shape)):
         den_in = den_in[0]
 
-    # lags of the z range, and an extended window for the sub-pixel fit and sigma_a
-    delta0 = g.loglam0 - bank.loglam0
-    k_lo = int(np.ceil((np.log1p(z_min) - delta0) / d - 1e-9))
-    k_hi = int(np.floor((np.log1p(z_max) - delta0) / d + 1e-9))
-    k_min, k_max = -(n_tpl - 1), n_data - 1  # lags with any overlap at all
-    k_lo, k_hi = max(k_lo, k_min + 1), min(k_hi, k_max - 1)
     shape = (n_rows, n_t, n_peaks)
     nan = np.full(shape, np.nan)
-    if k_hi < k_lo or not good_any.any():
+    win = lag_window(n_data, g, bank, z_min, z_max, sigma_a_halfwidth=K, block=block)
+    if win is None or not good_any.any():
         logger.info("no lag of the template bank overlaps the data for z in [%g, %g]", z_min, z_max)
         return PeakArrays(bank.classes, nan, nan.copy(), nan.copy(), nan.copy(), nan.copy(),
                           nan.copy(), np.zeros(shape, bool), {} if curves else None)
+    k_lo, k_hi, e_lo, e_hi, t_lo, t_hi, nfft = win
     blk = max(1, int(block))
-    e_lo, e_hi = k_lo - K - 2, k_hi + K + 2 + blk  # lags computed (beyond-range ones invalid)
-    t_lo, t_hi = max(e_lo, k_min), min(e_hi, k_max)  # lags with overlap: must not alias
     n_win = e_hi - e_lo + 1
-    nfft = sfft.next_fast_len(max(t_hi + n_tpl, n_data - t_lo, n_data, n_tpl, n_win), real=True)
     trusted = (np.arange(e_lo, e_hi + 1) >= t_lo) & (np.arange(e_lo, e_hi + 1) <= t_hi)
     off = k_lo - e_lo  # index of k_lo in the extended window
     n_core = k_hi - k_lo + 1
