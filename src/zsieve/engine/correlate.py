@@ -520,6 +520,11 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
         ok = trusted & (den > min_overlap * top_den)
         valid.append(ok)
         inv.append(np.where(ok, 1.0 / np.sqrt(np.where(ok, den, 1.0)), 0.0).astype(dtype))
+    # the part of the z range where each template meets the data: only it is searched
+    spans = []
+    for ok in valid:
+        idx = np.flatnonzero(ok.any(axis=0)[off:off + n_core])
+        spans.append((off + int(idx[0]), int(idx[-1] - idx[0] + 1)) if idx.size else (off, 0))
 
     z_out, r_out, h_out, s_out, lag_out, sa_out = (np.full(shape, np.nan) for _ in range(6))
     curve_out = {} if curves else None
@@ -544,8 +549,14 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
                 curve_out[bank.classes[t]] = _downsample_curve(
                     lag_to_z(lags[off:off + n_core], g, bank), c[0, off:off + n_core], curve_points)
 
-            top, found = _top_local_maxima(c, off, n_core, p_take, blk)
-            p = top + off  # index in the extended window
+            s_off, s_n = spans[t]
+            if s_n <= 0:
+                continue  # this template meets the data at no lag of the z range
+            top, found = _top_local_maxima(c, s_off, s_n, min(p_take, s_n), blk)
+            if top.shape[1] < p_take:
+                top = np.pad(top, ((0, 0), (0, p_take - top.shape[1])), mode="edge")
+                found = np.pad(found, ((0, 0), (0, p_take - found.shape[1])))
+            p = top + s_off  # index in the extended window
             x, h, s = _subpixel(c[rows, p - 1].astype(float), c[rows, p].astype(float),
                                 c[rows, p + 1].astype(float))
             sig_a = _sigma_a(c, vt, p, x, K)
