@@ -12,7 +12,8 @@ described in :mod:`zsieve.report.record`:
   several spectra gives one row per spectrum (keys ``<key>``, ``<key>@1``, ``<key>@2`` ...).
 * **Workers**: ``jobs=1`` runs in this process; more uses a
   :class:`~concurrent.futures.ProcessPoolExecutor` fed a bounded number of files at a time, so
-  memory stays flat however large the folder. Each worker reads, measures, adds frames and
+  memory stays flat however large the folder; ``scheduler`` hands the same tasks to a Dask
+  cluster instead (:mod:`zsieve.cluster`, optional). Each worker reads, measures, adds frames and
   cosmology, draws the figure and writes the JSON record itself (atomically); it sends back
   only the small summary rows.
 * **Resume**: a record is reused when the SHA-256 of its input file and the hash of the
@@ -190,6 +191,7 @@ class BatchSettings:
     checkpoint_s: float = 30.0
     progress: bool | None = None  # None: a bar only on a terminal
     in_flight_per_job: int = 4
+    scheduler: Any = None  # a Dask scheduler (address, local:N or Client): see zsieve.cluster
 
     def config_dict(self) -> dict[str, Any]:
         cfg = self.config
@@ -622,7 +624,8 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
             if not final:
                 log.info("checkpoint: %d rows in %s", len(rows), out_dir)
 
-        def take(new_rows: list[dict]):
+        def take(new_rows: list[dict], fitted: bool = False):
+            summary.n_fitted_now += bool(fitted)
             for r in new_rows:
                 rows[r["key"]] = r
                 touched.add(r["key"])
@@ -669,16 +672,19 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
                         else:
                             yield None
                         continue
-                summary.n_fitted_now += 1
                 yield ("fit", item, sha, {k: v for k, v in hands.items() if k.split("@")[0] == base})
 
         bar = _progress_bar(settings.progress, lambda: sum(1 for _ in discover(paths, exclude=[str(out_dir)], root=root)))
         try:
-            if settings.jobs <= 1:
+            if settings.scheduler is not None:
+                from .cluster import run_tasks
+
+                run_tasks(ctx, settings, tasks(), take, bar)
+            elif settings.jobs <= 1:
                 _init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel(), pool_worker=False)
                 for task in tasks():
                     if task is not None:
-                        take(_run_task(task))
+                        take(_run_task(task), fitted=task[0] == "fit")
                     bar.update(1)
             else:
                 _run_pool(ctx, settings, tasks(), take, bar)
@@ -800,6 +806,15 @@ def _run_pool(ctx: _Context, settings: BatchSettings, tasks: Iterator, take, bar
             pending[pool.submit(_run_task, task)] = task
             drain(limit - 1)
         drain(0)
+    except KeyboardInterrupt:
+        # files not started are dropped; those being measured finish (a second or so), so the
+        # summary written next reflects every record on disk
+        log.warning("interrupted: waiting for the files being measured to finish")
+        pool.shutdown(wait=True, cancel_futures=True)
+        for fut, task in pending.items():
+            if fut.done() and not fut.cancelled():
+                _collect(ctx, fut, task, take)
+        raise
     except BaseException:
         pool.shutdown(wait=False, cancel_futures=True)
         raise
@@ -813,7 +828,7 @@ def _collect(ctx: _Context, fut: cf.Future, task: tuple, take) -> bool:
 
     kind, item, sha, _ = task
     try:
-        take(fut.result())
+        take(fut.result(), fitted=kind == "fit")
         return False
     except cf.process.BrokenProcessPool:
         log.warning("%s: a worker process died while measuring it; marked failed (retried next run)", item.path)

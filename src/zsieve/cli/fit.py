@@ -45,7 +45,7 @@ DEFAULTS = {
     "resamples": None, "seed": None, "mask": None, "sky_mask": None, "snr_threshold": None,
     "cosmology": None, "H0": None, "Om0": None, "Ode0": None, "w0": None, "Tcmb0": None,
     "jobs": None, "figures": True, "pdf": False, "force": False, "strict": False, "keep_hand": True,
-    "progress": None,
+    "progress": None, "scheduler": None,
 }
 
 
@@ -87,6 +87,9 @@ def register(subparsers) -> argparse.ArgumentParser:
         c.add_argument(f"--{name}", metavar="X", default=S, help=what)
     r = p.add_argument_group("run")
     r.add_argument("--jobs", "-j", metavar="N", default=S, help="worker processes (default: all cores)")
+    r.add_argument("--scheduler", metavar="ADDRESS", default=S,
+                   help="run the fits on a Dask cluster: local:N, tcp://host:port or a scheduler file "
+                        "(needs zsieve[dask]; DIR must be shared with the workers)")
     r.add_argument("--no-figures", dest="figures", action="store_false", default=S,
                    help="records and summary only, no figures")
     r.add_argument("--pdf", action="store_true", default=S, help="figures as PDF instead of PNG")
@@ -203,6 +206,7 @@ def _settings(opts: dict):
         force=bool(opts["force"]),
         keep_hand=bool(opts["keep_hand"]),
         progress=opts["progress"],
+        scheduler=opts["scheduler"] or None,
     )
 
 
