@@ -398,7 +398,7 @@ def lag_window(n_data: int, grid, bank: TemplateBank, z_min: float, z_max: float
 
 def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0.0,
                     z_max: float = 6.0, n_peaks: int = 5, *, apodize: float = 0.05,
-                    sigma_a_halfwidth: int = 200, dtype=np.float32, workers: int = -1,
+                    sigma_a_halfwidth: int = 200, dtype=np.float32, workers: int = 1,
                     min_overlap: float = 0.02, noise_floor: float = 1.0, block: int = 8,
                     chunk_rows: int = 100,
                     curves: bool = False,
@@ -431,7 +431,8 @@ def correlate_peaks(flux2d, weight2d, grid, bank: TemplateBank, z_min: float = 0
         Working precision of the FFTs (float32 is ample: positions agree with float64 to a
         small fraction of a pixel; see the tests).
     workers : int
-        Threads for scipy.fft (-1 = all cores).
+        Threads for scipy.fft (-1 = all cores; 1 by default, since batches run one process
+        per core and extra threads only contend).
     min_overlap : float
         Lags where the template's weighted power in the data is below this fraction of its
         largest value are ignored: there only a line wing or the template's small zero-mean
