@@ -23,7 +23,8 @@ described in :mod:`zsieve.report.record`:
   ``checkpoint_s`` seconds, at the end, and on interruption.
 * **Hand decisions** in ``DIR/decisions.log`` (:mod:`zsieve.refit.decisions`) are never
   overwritten: a refitted record carries the decision in force in its ``hand`` field and the
-  summary shows the hand z/grade, unless ``keep_hand=False``.
+  summary shows the hand z/grade. With ``keep_hand=False`` objects carrying a decision are
+  measured again and show the engine's answer; the log itself is left as it is.
 * **Failures** are isolated: an unreadable file or a fit that raises becomes a ``failed`` record
   with a one-line message (the traceback goes to the debug log).
 """
@@ -305,16 +306,24 @@ def _finish(ctx: _Context, result: FitResult, spectrum, key: str, hand: dict | N
     if hand:
         result = result.replace(hand=hand_cosmology(hand, ctx.cosmology))
     if ctx.figures and result.status == "ok" and spectrum is not None:
-        from .report.figure import write_figure
-
         try:
-            write_figure(object_path(ctx.out_dir, key, "." + ctx.figure_format), result, spectrum, dpi=ctx.dpi)
+            _draw(ctx, key, result, spectrum)
         except Exception as exc:  # a figure problem must not lose the measurement
             log.warning("%s: figure not drawn (%s: %s)", result.file, type(exc).__name__, _one_line(exc))
             log.debug("figure traceback for %s", key, exc_info=True)
     rec = result.to_dict()
     write_record(ctx.out_dir, key, rec)
     return row_from_record(rec)
+
+
+def _draw(ctx: _Context, key: str, result: FitResult, spectrum) -> None:
+    """The object's figure: PNG (the index page's thumbnail), plus PDF when asked for."""
+    from .report.figure import write_figure
+    from .report.record import object_path
+
+    png = object_path(ctx.out_dir, key, ".png")
+    also = [object_path(ctx.out_dir, key, ".pdf")] if ctx.figure_format == "pdf" else []
+    write_figure(png, result, spectrum, dpi=ctx.dpi, also=also)
 
 
 def _failure(ctx, item, sha, key, message, *, index=0, n=1, status="failed", transient=False) -> dict[str, Any]:
@@ -381,7 +390,6 @@ def _remove_extra_indices(out_dir: str, relpath: str, n: int) -> None:
 def _figure_only(ctx: _Context, item: InputFile, keys: list[str]) -> list[dict[str, Any]]:
     """Draw missing figures of reused records (the spectrum is read again, not refitted)."""
     from .io import read_spectra
-    from .report.figure import write_figure
     from .report.record import object_path, read_record
     from .report.summary import row_from_record
 
@@ -397,7 +405,7 @@ def _figure_only(ctx: _Context, item: InputFile, keys: list[str]) -> list[dict[s
                 if spectra is None:
                     spectra = read_spectra(item.path, medium=ctx.medium)
                 idx = int((res.provenance or {}).get("index") or 0)
-                write_figure(object_path(ctx.out_dir, key, "." + ctx.figure_format), res, spectra[idx], dpi=ctx.dpi)
+                _draw(ctx, key, res, spectra[idx])
             except Exception as exc:
                 log.warning("%s: figure not drawn (%s: %s)", item.path, type(exc).__name__, _one_line(exc))
         rows.append(row_from_record(rec))
@@ -660,11 +668,13 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
                 f = facts.get(base)
                 if f and not settings.force and not f["transient"] and f["sha"] == sha and f["settings"] == shash:
                     keys = [base] + [make_key(item.relpath, i) for i in range(1, f["n"])]
-                    if all(k in facts for k in keys):
+                    dropping = not settings.keep_hand and any(facts.get(k, {}).get("hand") for k in keys)
+                    if all(k in facts for k in keys) and not dropping:
                         if settings.keep_hand and any(not _same_decision(facts[k]["hand"], hands.get(k)) for k in keys):
                             take(_update_hands(ctx, keys, hands))
+                        suffixes = (".png", ".pdf") if settings.figure_format == "pdf" else (".png",)
                         need_fig = [k for k in keys if settings.figures and facts[k]["status"] == "ok"
-                                    and not object_path(out_dir, k, "." + settings.figure_format).exists()]
+                                    and not all(object_path(out_dir, k, x).exists() for x in suffixes)]
                         touched.update(keys)
                         summary.n_reused += len(keys)
                         if need_fig:

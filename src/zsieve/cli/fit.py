@@ -92,7 +92,7 @@ def register(subparsers) -> argparse.ArgumentParser:
                         "(needs zsieve[dask]; DIR must be shared with the workers)")
     r.add_argument("--no-figures", dest="figures", action="store_false", default=S,
                    help="records and summary only, no figures")
-    r.add_argument("--pdf", action="store_true", default=S, help="figures as PDF instead of PNG")
+    r.add_argument("--pdf", action="store_true", default=S, help="figures also as PDF (the PNG stays: it is the index page's thumbnail)")
     r.add_argument("--force", action="store_true", default=S, help="refit everything, even unchanged inputs")
     r.add_argument("--strict", action="store_true", default=S, help="exit with status 1 if any file failed")
     r.add_argument("--keep-hand", dest="keep_hand", action="store_true", default=S,

@@ -22,7 +22,7 @@ from typing import Any
 from .atomic import write_atomic
 from .record import make_key, object_path, write_record
 
-__all__ = ["write_atomic", "make_key", "complete_result", "hand_cosmology", "update_object", "figure_suffix"]
+__all__ = ["write_atomic", "make_key", "complete_result", "hand_cosmology", "update_object", "figure_suffix", "figure_suffixes"]
 
 log = logging.getLogger(__name__)
 
@@ -96,9 +96,14 @@ def hand_cosmology(hand: dict[str, Any] | None, cosmology=None) -> dict[str, Any
 
 
 def figure_suffix(result) -> str:
-    """``.pdf`` or ``.png``: the figure format recorded in the result's provenance (default PNG)."""
+    """Suffix of an object's main figure: ``.png`` (the index thumbnail; a PDF may sit beside it)."""
+    return figure_suffixes(result)[0]
+
+
+def figure_suffixes(result) -> tuple[str, ...]:
+    """Figure files an object has: ``(".png",)``, plus ``".pdf"`` when the batch was asked for PDF."""
     fmt = str((result.provenance or {}).get("figure_format") or "png").lower()
-    return ".pdf" if fmt == "pdf" else ".png"
+    return (".png", ".pdf") if fmt == "pdf" else (".png",)
 
 
 def update_object(out_dir: str | os.PathLike, key: str, result, spectrum=None, *, figure: bool | None = None) -> str:
@@ -116,13 +121,12 @@ def update_object(out_dir: str | os.PathLike, key: str, result, spectrum=None, *
     prov = dict(result.provenance or {})
     prov.setdefault("key", key)
     result = complete_result(result.replace(provenance=prov), spectrum, prov.get("cosmology_spec"))
-    suffix = figure_suffix(result)
-    fig_path = object_path(out_dir, key, suffix)
-    draw = figure if figure is not None else (spectrum is not None and fig_path.exists())
+    paths = [object_path(out_dir, key, x) for x in figure_suffixes(result)]
+    draw = figure if figure is not None else (spectrum is not None and paths[0].exists())
     if draw and spectrum is not None and result.status == "ok":
         from .figure import write_figure
 
-        write_figure(fig_path, result, spectrum)
+        write_figure(paths[0], result, spectrum, also=paths[1:])
     path = write_record(out_dir, key, result.to_dict())
     rows = rebuild_summary(out_dir)
     write_index(out_dir, rows)

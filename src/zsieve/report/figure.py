@@ -268,14 +268,16 @@ def draw_figure(result, spectrum, *, dpi: int = 100):
         names = [str(_get(m, "name")) for m in lines]
         xs = [_f(_get(m, "observed_wavelength")) for m in lines]
         widths = [(len(n) * 5.6 + 8) / ax_w_px * xspan for n in names]
-        levels = stagger_levels(xs, widths, n_levels=4)
-        for m, name, x, lev in zip(lines, names, xs, levels):
+        # a name near an edge is moved inwards so that it stays whole inside the panel
+        tx = [min(max(x, wave[0] + w / 2), wave[-1] - w / 2) if math.isfinite(x) else x for x, w in zip(xs, widths)]
+        levels = stagger_levels(tx, widths, n_levels=4)
+        for m, name, x, xt, lev in zip(lines, names, xs, tx, levels):
             if not math.isfinite(x):
                 continue
             colour = PALETTE["emission"] if _get(m, "kind") != "absorption" else PALETTE["absorption"]
             ytop = 0.985 - 0.075 * lev
             ax.axvline(x, ymin=0.0, ymax=ytop - 0.045, color=colour, lw=0.8, ls=(0, (3, 2)), alpha=0.85, zorder=1.5)
-            ax.text(x, ytop, name, transform=ax.get_xaxis_transform(), ha="center", va="top", fontsize=7.5,
+            ax.text(xt, ytop, name, transform=ax.get_xaxis_transform(), ha="center", va="top", fontsize=7.5,
                     color=colour, clip_on=True)
     handles, labels = ax.get_legend_handles_labels()
     if bad.any():
@@ -391,18 +393,18 @@ def draw_figure(result, spectrum, *, dpi: int = 100):
     return fig
 
 
-def write_figure(path: str | os.PathLike, result, spectrum, *, dpi: int = 100) -> str:
-    """Draw and write the figure atomically; the format (PNG or PDF) follows the suffix."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
+def write_figure(path: str | os.PathLike, result, spectrum, *, dpi: int = 100, also: Sequence[str] = ()) -> str:
+    """Draw the figure once and write it atomically to ``path`` (and to each path in ``also``).
 
-    path = os.fspath(path)
-    fmt = "pdf" if path.lower().endswith(".pdf") else "png"
+    The format (PNG or PDF) of each file follows its suffix. Returns ``path``.
+    """
     fig = draw_figure(result, spectrum, dpi=dpi)
-    if fmt == "png":
-        FigureCanvasAgg(fig)
-    buf = io.BytesIO()
-    if fmt == "png":  # light compression: a third of the encoding time for ~20% larger files
-        fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": "zsieve"}, pil_kwargs={"compress_level": 3})
-    else:
-        fig.savefig(buf, format="pdf", dpi=dpi)
-    return write_atomic(path, buf.getvalue())
+    for target in (path, *also):
+        target = os.fspath(target)
+        buf = io.BytesIO()
+        if target.lower().endswith(".pdf"):
+            fig.savefig(buf, format="pdf", dpi=dpi)
+        else:  # light compression: a third of the encoding time for ~20% larger files
+            fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": "zsieve"}, pil_kwargs={"compress_level": 3})
+        write_atomic(target, buf.getvalue())
+    return os.fspath(path)
