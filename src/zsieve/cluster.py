@@ -41,7 +41,6 @@ import contextlib
 import dataclasses
 import logging
 import os
-import threading
 import uuid
 import warnings
 from typing import Any, Callable, Iterable, Iterator
@@ -242,22 +241,14 @@ def run_tasks(ctx, settings, tasks: Iterable[tuple | None], take: Callable[[list
             raise
 
 
-_HOOK_LOCK = threading.Lock()
-
-
-def _batch_takes_scheduler() -> bool:
-    from .batch import BatchSettings
-
-    return any(f.name == "scheduler" for f in dataclasses.fields(BatchSettings))
-
-
 def run(paths: Iterable[str], out_dir, settings=None, *, scheduler="local:2", on_row=None,
-        threads_per_worker: int = 1, memory_limit: str | int = "auto", retries: int = 2):
+        threads_per_worker: int = 1, memory_limit: str | int = "auto"):
     """:func:`zsieve.batch.run_batch` with the per-file work on a Dask cluster.
 
     Same arguments and result (a :class:`~zsieve.batch.BatchSummary`) as ``run_batch``, plus
-    the scheduler (see :func:`connect`). The outputs are those of a local run with the same
-    settings, record for record (only ``provenance.time`` differs).
+    the scheduler (see :func:`connect`; ``threads_per_worker`` and ``memory_limit`` apply to
+    ``local:N``). The outputs are those of a local run with the same settings, record for
+    record (only ``provenance.time`` differs).
 
     Raises
     ------
@@ -268,18 +259,4 @@ def run(paths: Iterable[str], out_dir, settings=None, *, scheduler="local:2", on
 
     settings = settings or batch.BatchSettings()
     with connect(scheduler, threads_per_worker=threads_per_worker, memory_limit=memory_limit) as client:
-        if _batch_takes_scheduler():
-            return batch.run_batch(paths, out_dir, dataclasses.replace(settings, scheduler=client), on_row=on_row)
-        # A batch layer without the ``scheduler`` setting: its pool branch (taken for jobs > 1)
-        # calls the module's ``_run_pool``; point that at this executor for the call.
-        def executor(ctx, s, tasks, take, bar):
-            run_tasks(ctx, s, tasks, take, bar, client=client, retries=retries)
-
-        with _HOOK_LOCK:
-            saved = batch._run_pool
-            batch._run_pool = executor
-            try:
-                return batch.run_batch(paths, out_dir, dataclasses.replace(settings, jobs=max(2, settings.jobs)),
-                                       on_row=on_row)
-            finally:
-                batch._run_pool = saved
+        return batch.run_batch(paths, out_dir, dataclasses.replace(settings, scheduler=client), on_row=on_row)
