@@ -6,7 +6,7 @@ Every reader ends here, so the rules are the same for all formats:
 - an empty spectrum, non-finite wavelengths, or flux that is NaN everywhere are errors;
 - decreasing wavelengths are legal: all arrays are reversed; wavelengths that repeat or go
   back and forth are an error naming the first offending pixel;
-- the unit sanity rule of :mod:`zsieve.io.units` is applied (after conversion to Angstrom);
+- wavelengths must be positive; the unit sanity rule of :mod:`zsieve.io.units` is applied (after conversion to Angstrom);
 - air wavelengths become vacuum with :func:`zsieve.lines.air_to_vacuum` (Morton 2000) when the
   file says air or the caller passes ``medium="air"``; the caller's word wins over the file's;
 - pixels with a zero, negative or non-finite uncertainty are masked; if no pixel with finite
@@ -113,6 +113,8 @@ def build_spectrum(
             raise SpectrumFileError(
                 path, f"wavelengths are {what} at pixel {k + 1} ({wave[k + 1]:.6g} after {wave[k]:.6g})"
             )
+    if wave[0] <= 0:
+        raise SpectrumFileError(path, f"wavelengths must be positive (the grid starts at {wave[0]:.6g})")
     check_wave_plausible(path, wave, unit_label, unit_guessed)
     if medium == "air":
         from ..lines import air_to_vacuum

@@ -58,6 +58,9 @@ def wcs_wavelength(path, header, n: int) -> tuple[np.ndarray, str, bool, str | N
     """
     h = header if isinstance(header, HeaderView) else HeaderView(header)
     ctype = (clean_text(h.get("CTYPE1")) or "").upper()
+    for key in ("CRVAL1", "CD1_1", "CDELT1", "CRPIX1"):
+        if h.get(key) is not None and h.number(key) is None:
+            raise SpectrumFileError(path, f"{key} = {clean_text(h.get(key), 40)!r} is not a finite number")
     crval = h.number("CRVAL1")
     cdelt = h.number("CD1_1")
     if cdelt is None:
@@ -97,7 +100,8 @@ def wcs_wavelength(path, header, n: int) -> tuple[np.ndarray, str, bool, str | N
         wave = 10.0 ** loglam * factor
         return wave, "log10(Angstrom)" if factor == 1.0 else f"log10({canonical_wave_unit(unit_text)})", guessed, medium
     if crval is None or cdelt is None:
-        raise SpectrumFileError(path, "no wavelength axis: the header lacks CRVAL1 and CDELT1/CD1_1 (or COEFF0/COEFF1)")
+        missing = " and ".join(k for k, v in (("CRVAL1", crval), ("CDELT1/CD1_1", cdelt)) if v is None)
+        raise SpectrumFileError(path, f"no wavelength axis: the header has no {missing} (nor COEFF0/COEFF1)")
     if cdelt == 0:
         raise SpectrumFileError(path, "wavelength step CDELT1/CD1_1 is zero")
     p = i + 1.0

@@ -15,7 +15,13 @@ if a header declares
 - a table array column longer than that,
 - more than :data:`MAX_DATA_BYTES` of data in one HDU, or more than :data:`MAX_HDUS` HDUs,
 - more data than the file holds (truncated or lying header; not checked for compressed
-  files, whose size on disk says nothing about the data size).
+  files, whose size on disk says nothing about the data size),
+
+and a file larger than :data:`MAX_FILE_BYTES` is refused by its size alone. A file that ends
+inside an HDU's data or its padding to the 2880-byte block (FITS Standard 4.0, sec. 3.3) is
+truncated and refused with :class:`~zsieve.errors.SpectrumFileError`; a 3-D (or higher)
+image is refused as not a spectrum. Bytes after the last complete HDU that do not start
+with an XTENSION card are ignored.
 
 Header bytes are decoded as Latin-1, so non-UTF-8 bytes never fail; a card that cannot be
 parsed is skipped (treated as absent); strings are cleaned later (:mod:`zsieve.io.header`).
@@ -35,7 +41,7 @@ import numpy as np
 from ..errors import LimitExceededError, SpectrumFileError
 from ..spectrum import MAX_PIXELS
 
-__all__ = ["FitsFile", "HDUInfo", "parse_header_block", "MAX_DATA_BYTES", "MAX_HDUS"]
+__all__ = ["FitsFile", "HDUInfo", "parse_header_block", "MAX_DATA_BYTES", "MAX_HDUS", "MAX_FILE_BYTES"]
 
 log = logging.getLogger(__name__)
 
@@ -43,6 +49,8 @@ log = logging.getLogger(__name__)
 MAX_DATA_BYTES = 1 << 30
 #: Most HDUs zsieve will look through in one file.
 MAX_HDUS = 1000
+#: Largest FITS file zsieve will open (bytes); no 1-D spectrum file comes near it.
+MAX_FILE_BYTES = 2 << 30
 
 BLOCK = 2880
 _COMPRESSED_SUFFIXES = (".gz", ".bz2", ".zip", ".z", ".fz")
@@ -75,7 +83,7 @@ def _parse_value(text: str):
         return int(token)
     if _FLOAT.match(token):
         return float(token.replace("D", "E").replace("d", "e"))
-    return None
+    return token or None  # not a FITS number (e.g. NAN): kept as text so messages can name it
 
 
 def parse_header_block(raw: bytes) -> tuple[dict, bool]:
@@ -213,6 +221,8 @@ def _describe(path, hdr: dict, index: int) -> HDUInfo:
             if a > MAX_PIXELS:
                 raise LimitExceededError(path, f"HDU {index} declares NAXIS{k} = {a} (limit {MAX_PIXELS})")
         info.shape = tuple(axes[::-1]) if elements else ()
+        if kind == "image" and sum(a > 1 for a in axes) > 2:
+            raise SpectrumFileError(path, f"HDU {index} is a {naxis}-D image {tuple(axes)}, not a 1-D spectrum")
     if nbytes > MAX_DATA_BYTES:
         raise LimitExceededError(path, f"HDU {index} declares {nbytes} bytes of data (limit {MAX_DATA_BYTES})")
     return info
@@ -230,6 +240,8 @@ class FitsFile:
             self.size = os.path.getsize(self.path)
         except OSError as exc:
             raise SpectrumFileError(path, f"cannot be opened ({exc.strerror or exc})") from None
+        if self.size > MAX_FILE_BYTES:
+            raise LimitExceededError(path, f"file of {self.size} bytes is larger than the limit of {MAX_FILE_BYTES}")
         self._hdul = None
         self._fh = None
         self.compressed = self.path.lower().endswith(_COMPRESSED_SUFFIXES) or self._gzip_magic()
@@ -253,16 +265,23 @@ class FitsFile:
             if len(infos) >= MAX_HDUS:
                 raise LimitExceededError(self.path, f"more than {MAX_HDUS} HDUs")
             fh.seek(offset)
-            raw, end = b"", False
+            blocks, end = [], False
             while not end:
                 block = fh.read(BLOCK)
                 if len(block) < BLOCK:
+                    if infos and (blocks or block.startswith(b"XTENSION")):
+                        raise SpectrumFileError(
+                            self.path, f"truncated: the file ends inside the header of HDU {len(infos)}"
+                        )
                     break
-                raw += block
+                if not blocks and not block.startswith(b"SIMPLE  =" if offset == 0 else b"XTENSION="):
+                    break  # not the start of an HDU
+                blocks.append(block)
                 if b"END" in block:
-                    cards, end = parse_header_block(raw)
-                if len(raw) > 10_000 * BLOCK:
+                    cards, end = parse_header_block(b"".join(blocks))
+                if len(blocks) > 1000:  # 36,000 cards: not a real header
                     break
+            raw = b"".join(blocks)
             if not end:
                 if not infos:
                     raise SpectrumFileError(self.path, "not a readable FITS file (no complete primary header)")
@@ -278,6 +297,12 @@ class FitsFile:
             self._check_fits_in_file(info)
             infos.append(info)
             offset = info.data_loc + -(-info.nbytes // BLOCK) * BLOCK
+            if offset > self.size:
+                raise SpectrumFileError(
+                    self.path,
+                    f"truncated: HDU {info.index} with its padding should end at byte {offset} "
+                    f"but the file has {self.size} bytes",
+                )
         if not infos:
             raise SpectrumFileError(self.path, "not a readable FITS file (empty)")
         return infos
