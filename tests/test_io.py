@@ -592,3 +592,28 @@ def test_text_size_limit_and_directory(tmp_path, monkeypatch):
     _expect(tmp_path / "s.csv", "larger than the limit", LimitExceededError)
     (tmp_path / "folder.fits").mkdir()
     _expect(tmp_path / "folder.fits", "directory")
+
+
+def test_more_bad_fits_shapes(tmp_path):
+    # FITS Standard 4.0 sec. 3.3: every HDU is padded to a multiple of 2880 bytes.
+    spec = make_spectrum("linear", masked=False)
+    write_fits_image(spec, tmp_path / "ok.fits", uncertainty="sigma", dtype=np.float32)
+    raw = (tmp_path / "ok.fits").read_bytes()
+    first_end = 2880 + -(-4 * N // 2880) * 2880
+    (tmp_path / "pad.fits").write_bytes(raw[: first_end - 7])  # data intact, padding cut
+    _expect(tmp_path / "pad.fits", "truncated")
+    (tmp_path / "hdr2.fits").write_bytes(raw[: first_end + 1000])  # cut inside the 2nd header
+    _expect(tmp_path / "hdr2.fits", "truncated")
+    fits.PrimaryHDU(np.ones((3, 4, 50))).writeto(tmp_path / "cube.fits")
+    _expect(tmp_path / "cube.fits", "not a 1-D spectrum")
+    hdr = fits.Header({"CTYPE1": "WAVE", "CRVAL1": -500.0, "CDELT1": 5.0})
+    fits.PrimaryHDU(np.ones(1000), header=hdr).writeto(tmp_path / "neg.fits")
+    _expect(tmp_path / "neg.fits", "positive")
+    k = raw.index(b"CDELT1  =")
+    (tmp_path / "nan.fits").write_bytes(raw[:k] + b"CDELT1  =                  NAN".ljust(80) + raw[k + 80 :])
+    _expect(tmp_path / "nan.fits", "CDELT1 = 'NAN' is not a finite number")
+    sparse = tmp_path / "sparse.fits"
+    sparse.write_bytes(raw)
+    with open(sparse, "r+b") as fh:
+        fh.truncate(3 * 1024**3)  # sparse: no disk used; refused by size before reading
+    _expect(sparse, "larger than the limit", LimitExceededError)
