@@ -169,7 +169,7 @@ def test_caller_medium_overrides_file(tmp_path):
     np.testing.assert_allclose(as_air.wavelength, air_to_vacuum(spec.wavelength), atol=1e-8)
     # A header keyword AIRORVAC = 'air' (common practice) is honoured without the caller.
     path2 = tmp_path / "air.txt"
-    path2.write_text("# AIRORVAC = air\nwave flux\n5006.84 1\n5007.84 2\n")
+    path2.write_text("# AIRORVAC = air\nwave flux\n" + "".join(f"{5006.84 + i:.2f} 1\n" for i in range(12)))
     # NIST (from memory): [O III] 5006.84 air = 5008.24 vacuum.
     assert abs(read_spectrum(path2).wavelength[0] - 5008.24) < 0.02
 
@@ -365,6 +365,13 @@ def test_is_spectrum_candidate(tmp_path):
     assert not is_spectrum_candidate(tmp_path / "catalogue.csv")
     assert not is_spectrum_candidate(tmp_path / "notes.md")
     assert not is_spectrum_candidate(tmp_path)
+    # A long comment block before the header does not hide a spectrum.
+    long = tmp_path / "long.csv"
+    long.write_text("# OBJECT: " + "Q" * 10_000 + "\nwave,flux\n" + "\n".join(f"{4000 + i},1" for i in range(20)))
+    assert is_spectrum_candidate(long) and read_spectrum(long).n_pix == 20
+    few = tmp_path / "few.csv"
+    few.write_text("wave,flux\n4000,1\n4001,1\n4002,1\n")
+    _expect(few, "usable pixel")
 
 
 # ---------------------------------------------------------------- bad input
@@ -565,7 +572,7 @@ def test_property_any_order_and_unit_reads_back(tmp_path_factory):
     @given(
         start=st.floats(3000.0, 8000.0),
         step=st.floats(0.1, 5.0),
-        n=st.integers(3, 300),
+        n=st.integers(10, 300),
         unit=st.sampled_from([("Angstrom", 1.0), ("nm", 10.0), ("um", 1e4)]),
         reverse=st.booleans(),
     )

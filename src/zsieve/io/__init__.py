@@ -91,8 +91,9 @@ def is_spectrum_candidate(path) -> bool:
     """Cheap test (name and first bytes only) of whether ``path`` may hold a spectrum.
 
     FITS files are recognised by their magic bytes (or a FITS suffix on a gzip file); text
-    files by a text suffix, no NUL bytes, and a header row or data that names or looks like
-    a wavelength column, so catalogues such as a ``manifest.csv`` are passed over.
+    files by a text suffix, no NUL bytes, and a first non-comment line that names wavelength
+    and flux columns or holds numbers, so catalogues such as a ``manifest.csv`` are passed
+    over. A text file whose first 4 KB are all comments counts as a candidate.
     """
     spath = str(path)
     if not os.path.isfile(spath):
@@ -114,9 +115,14 @@ def is_spectrum_candidate(path) -> bool:
     text = head.decode("utf-8", errors="replace")
     if text.startswith("# %ECSV"):
         return True
-    for line in text.splitlines():
+    lines = text.splitlines()
+    if len(head) == 4096 and lines:
+        lines = lines[:-1]  # the last line may be cut
+    if not lines:
+        return True  # one very long first line: let the reader decide
+    for line in lines:
         s = line.strip().lstrip("#").strip()
-        if not s or ":" in s.split()[0] or "=" in s:
+        if not s or ":" in s.split()[0] or "=" in s or len(s) > 1000:
             continue
         for sep in ("\t", ",", None):
             tokens = [split_name_unit(t)[0] for t in (s.split(sep) if sep else s.split())]
@@ -126,8 +132,10 @@ def is_spectrum_candidate(path) -> bool:
         try:  # headerless numeric columns
             return len([float(t) for t in s.replace(",", " ").split()]) >= 2
         except ValueError:
+            if not line.lstrip().startswith("#"):
+                return False  # a header row that names no spectrum columns
             continue
-    return False
+    return True  # only comments in the first 4 KB: undecided, let the reader decide
 
 
 def read_spectra(path, medium: str | None = None, *, wave_unit: str | None = None) -> list:

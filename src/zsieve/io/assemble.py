@@ -10,7 +10,8 @@ Every reader ends here, so the rules are the same for all formats:
 - air wavelengths become vacuum with :func:`zsieve.lines.air_to_vacuum` (Morton 2000) when the
   file says air or the caller passes ``medium="air"``; the caller's word wins over the file's;
 - pixels with a zero, negative or non-finite uncertainty are masked; if no pixel with finite
-  flux and a usable uncertainty remains, the file is refused.
+  flux and a usable uncertainty remains, the file is refused; so is one with fewer than
+  :data:`MIN_USABLE_PIXELS` (10) usable pixels.
 """
 
 from __future__ import annotations
@@ -23,11 +24,13 @@ from ..errors import SpectrumFileError
 from ..spectrum import MAX_PIXELS, Spectrum, SpectrumMeta
 from .units import check_wave_plausible
 
-__all__ = ["build_spectrum", "resolve_medium", "MEDIA"]
+__all__ = ["build_spectrum", "resolve_medium", "MEDIA", "MIN_USABLE_PIXELS"]
 
 log = logging.getLogger(__name__)
 
 MEDIA = ("air", "vacuum")
+#: Fewest usable pixels a spectrum may have (fewer constrain no line and no continuum).
+MIN_USABLE_PIXELS = 10
 
 
 def resolve_medium(path, requested, from_file, default: str = "vacuum") -> tuple[str, str]:
@@ -128,6 +131,11 @@ def build_spectrum(
     if mask.all():
         raise SpectrumFileError(
             path, "no usable pixel: every pixel is flagged or has NaN flux or a zero/negative uncertainty"
+        )
+    n_good = int((~mask).sum())
+    if n_good < MIN_USABLE_PIXELS:
+        raise SpectrumFileError(
+            path, f"only {n_good} usable pixel(s): a spectrum needs at least {MIN_USABLE_PIXELS}"
         )
     kw = dict(meta or {})
     kw["medium"] = medium
