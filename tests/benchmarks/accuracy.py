@@ -142,8 +142,12 @@ def main(argv=None):
     ap.add_argument("--dump", default=None, help="write the per-mock table (CSV) here")
     a = ap.parse_args(argv)
     t0 = time.time()
+    rows = []
     with mp.Pool(a.workers) as pool:
-        rows = list(pool.imap(_one, _jobs(a.n, a.seed, a.resamples), chunksize=8))
+        for k, row in enumerate(pool.imap(_one, _jobs(a.n, a.seed, a.resamples), chunksize=4)):
+            rows.append(row)
+            if (k + 1) % 50 == 0:
+                print(f"... {k + 1} done, {time.time() - t0:.0f} s", file=sys.stderr, flush=True)
     wall = time.time() - t0
     print(summarise(rows))
     print(f"wall time {wall:.1f} s on {a.workers} worker(s): {a.n / wall:.1f} spectra/s")

@@ -15,6 +15,7 @@ The evidence of an answer is:
   ``at-edge``         the strongest matched line is within 20 Angstrom of the spectrum's ends;
   ``faint``           total line S/N below 8;
   ``xcorr-differs``   the best template correlation (r >= 6) points at another z;
+  ``xcorr-silent``    ... and the adopted candidate has no correlation peak of its own (r < 4);
   ``close-rival``     a rival at another z keeps >= 15% of the resamples;
   ``often-nothing``   >= 20% of resamples find no candidate at all;
   ``noise-from-scatter`` the file had no uncertainties (noise estimated from the flux scatter).
@@ -37,7 +38,7 @@ from __future__ import annotations
 
 __all__ = ["FLAGS", "GRADE_RULES", "decide_grade"]
 
-FLAGS = ("one-line", "sky-overlap", "at-edge", "faint", "xcorr-differs", "close-rival",
+FLAGS = ("one-line", "sky-overlap", "at-edge", "faint", "xcorr-differs", "xcorr-silent", "close-rival",
          "often-nothing", "noise-from-scatter")
 
 #: Minimum evidence for each grade, calibrated on the mock benchmark.
@@ -46,7 +47,7 @@ GRADE_RULES = {
                    forbid=("one-line", "sky-overlap", "xcorr-differs", "close-rival", "often-nothing",
                            "faint", "noise-from-scatter")),
     "likely": dict(probability=0.85, n_lines=2, evidence=40.0, margin=15.0,
-                   forbid=("one-line", "sky-overlap", "often-nothing", "xcorr-differs")),
+                   forbid=("one-line", "sky-overlap", "often-nothing", "xcorr-silent")),
     "tentative": dict(probability=0.4, n_lines=1, evidence=20.0, margin=0.0, forbid=()),
 }
 

@@ -422,16 +422,31 @@ def _origin(seed, xc, fit):
 
 
 def _independent(best, rows, min_snr=4.0, off_sky_only=False):
-    """Groups of the best fit measured at S/N >= min_snr (optionally only lines off the sky)."""
+    """Independent lines of the best fit measured at S/N >= min_snr (optionally off the sky).
+
+    Members of a fixed-ratio group count once, except a *resolved* doublet: when two members
+    are each measured at S/N >= 2 * min_snr and their centroids are more than three line
+    sigmas apart, the doublet's spacing itself identifies the line (design: "use the doublet
+    shape"), so it counts as two.
+    """
     ls = best.model.ls
     sky = sky_ranges(0.3, 3.0, bands=False)
     out = set()
+    by_group: dict[int, list] = {}
     for r in rows:
         if r["snr"] < min_snr:
             continue
         if off_sky_only and range_mask(np.array([r["observed_wavelength"]]), sky)[0]:
             continue
-        out.add(int(ls.group[ls.names.index(r["name"])]))
+        g = int(ls.group[ls.names.index(r["name"])])
+        out.add(g)
+        by_group.setdefault(g, []).append(r)
+    for g, members in by_group.items():
+        strong = sorted((m for m in members if m["snr"] >= 2 * min_snr), key=lambda m: m["observed_wavelength"])
+        if len(strong) >= 2:
+            sep = strong[-1]["observed_wavelength"] - strong[0]["observed_wavelength"]
+            if sep > 3.0 * max(m["sigma_A"] for m in strong):
+                out.add(("resolved", g))
     return out
 
 
@@ -456,6 +471,9 @@ def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg):
         top = xc["peaks"][0]
         if top.r_tdr >= 6.0 and not _same_z(top.z, best.z, 1500.0 if best.cls == "quasar" else 500.0):
             flags.append("xcorr-differs")
+            own = _nearest_r(xc, best)
+            if not (own >= 4.0):
+                flags.append("xcorr-silent")
     rivals = [p for (f, _), p in zip(uniq[1:], prob[1:]) if not _same_z(f.z, best.z, 300.0)]
     if rivals and max(rivals) >= 0.15:
         flags.append("close-rival")
