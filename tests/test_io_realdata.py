@@ -32,6 +32,17 @@ def _manifest():
 
 
 ROWS = _manifest()
+
+
+def _surveys():
+    """file -> survey and data release, from truth.csv column 'survey' (e.g. 'SDSS DR7')."""
+    if not (REALDATA / "truth.csv").is_file():
+        return {}
+    with open(REALDATA / "truth.csv", newline="") as fh:
+        return {r["file"]: r["survey"] for r in csv.DictReader(fh)}
+
+
+SURVEY = _surveys()
 # manifest.csv 'format' column -> the layout zsieve must detect (names never used to decide).
 EXPECTED_FORMAT = {"SDSS spec": "sdss-spec", "SDSS spSpec": "sdss-spspec", "LAMOST DR1": "lamost-dr1"}
 
@@ -40,9 +51,9 @@ def _expected_format(row):
     return next(v for k, v in EXPECTED_FORMAT.items() if row["format"].startswith(k))
 
 
-@pytest.mark.parametrize("row", ROWS, ids=[r["file"] for r in ROWS])
+@pytest.mark.parametrize("row", ROWS, ids=[f"{r['file']} ({SURVEY.get(r['file'], '?')})" for r in ROWS])
 def test_every_realdata_file_loads(row):
-    # Survey and data release per file: see README.md table (SDSS DR6-DR14 files, LAMOST DR1).
+    # Survey and data release of each file: truth.csv 'survey' (in the test id), README.md table.
     path = REALDATA / row["file"]
     assert is_spectrum_candidate(path)
     spectra = read_spectra(path)
