@@ -192,7 +192,8 @@ def test_hostile_names_stay_inside(tmp_path):
     odd.write_text(f"# OBJECT = {hostile}\n" + body)
     out = tmp_path / "out"
     assert main(["fit", str(data), "--out", str(out), *FAST, "--pdf"]) == 0
-    for key in _rows(out)["key"]:  # --pdf: a PDF beside the PNG that the index shows
+    t = _rows(out)
+    for key in t["key"][t["status"] == "ok"]:  # --pdf: a PDF beside the PNG that the index shows
         assert (out / "objects" / f"{key}.pdf").read_bytes()[:5] == b"%PDF-"  # ISO 32000-1, 7.5.2
         assert (out / "objects" / f"{key}.png").exists()
     outside = [p for p in tmp_path.rglob("*") if out not in p.parents and p != out and data not in p.parents and p != data]
