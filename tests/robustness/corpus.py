@@ -333,19 +333,24 @@ def _truncations(b, rng):
                                     {"WAVELENGTH": "Angstrom"}), "fits"),
     }
     for label, (data, ext) in sources.items():
-        # the last byte of real data (trailing block padding excluded: cutting only padding
-        # leaves the data complete, which is not the point here)
+        # the end of the real data of the last HDU (the block padding after it excluded:
+        # cutting only padding leaves the data complete, a separate 'either' case)
         from astropy.io import fits
 
         with fits.open(io.BytesIO(data)) as hdul:
             last = hdul[-1]
-            info = last.fileinfo()
-            data_end = info["datLoc"] + last._data_size
+            h = last.header
+            n = int(np.prod([h[f"NAXIS{k}"] for k in range(1, h["NAXIS"] + 1)])) if h["NAXIS"] else 0
+            nbytes = abs(h["BITPIX"]) // 8 * h.get("GCOUNT", 1) * (h.get("PCOUNT", 0) + n)
+            data_end = last.fileinfo()["datLoc"] + nbytes
         offsets = sorted(set(int(x) for x in rng.integers(1, data_end, 14)))
         offsets += [80 * 3, _FITS_BLOCK, data_end - 1]  # mid-header, header only, one byte short
         for off in sorted(set(offsets)):
             b.add("trunc", f"{label}_at_{off}", ext, data[:off], "error",
-                  f"FITS {label} truncated at byte {off} of {len(data)}")
+                  f"FITS {label} truncated at byte {off} of {len(data)} (data end at {data_end})")
+        if data_end < len(data):
+            b.add("trunc", f"{label}_padding_at_{data_end + 1}", ext, data[: data_end + 1], "either",
+                  "FITS cut inside the block padding after complete data (non-standard length)")
     text = _csv_text(["wavelength", "flux", "error"], _rows(lg, f2, s2))
     header_len = text.index("\n") + 1
     b.add("trunc", "csv_in_header", "csv", text[: header_len // 2], "error",
@@ -455,10 +460,10 @@ def _shape_and_limit_cases(b, rng):
     # a real file larger than any spectrum: sparse (no disk used), valid header in front
     csv_head = _csv_text(["wavelength", "flux"], _rows(lw[:400], f[:400])).encode()
     for ext, head in (("fits", small[:_FITS_BLOCK]), ("csv", csv_head)):
-        p = b.add("limit", f"sparse_5GiB_{ext}", ext, head, "error",
-                  "a 5 GiB file (sparse): refused by size before reading", limit=True)
+        p = b.add("limit", f"sparse_3GiB_{ext}", ext, head, "error",
+                  "a 3 GiB file (sparse): refused by size before reading", limit=True)
         with open(p, "r+b") as fh:
-            fh.truncate(5 * 1024**3)
+            fh.truncate(3 * 1024**3)
     b.add("shape", "naxis1_negative", "fits", _set_card(small, "NAXIS1", _card("NAXIS1", "-5")),
           "error", "NAXIS1 = -5")
     b.add("shape", "naxis1_text", "fits", _set_card(small, "NAXIS1", "NAXIS1  = 'many'"),
@@ -541,10 +546,11 @@ def _value_cases(b, rng):
         ("constant", np.full(n, 3.0), "either", "a flat spectrum with no features"),
         ("huge_values", f * 1e300, "fit", "flux of order 1e300 (squares overflow)"),
         ("tiny_values", f * 1e-300, "fit", "flux of order 1e-300 (squares underflow)"),
+        ("cgs_scale", f * 1e-17, "fit", "flux in erg/s/cm2/A, of order 1e-17 (survey units)"),
         ("all_nan_but_one", np.where(np.arange(n) == 7, 1.0, np.nan), "reject",
          "a single finite pixel"),
     ):
-        sig = s * 1e300 if label == "huge_values" else s * 1e-300 if label == "tiny_values" else s
+        sig = s * {"huge_values": 1e300, "tiny_values": 1e-300, "cgs_scale": 1e-17}.get(label, 1.0)
         b.add("values", f"csv_{label}", "csv", csv_of(flux, sig), expect, why)
         b.add("values", f"image_{label}", "fits",
               _fits_image_bytes(flux, hdr, [("ERR", sig, None)]), expect, why)
@@ -849,14 +855,14 @@ def _bitflip_cases(b, rng):
     good = _fits_image_bytes(f, _wcs_linear(), dtype="f4")
     hdr_end = _header_end(good)
     data_end = hdr_end + 4 * lw.size
-    for i in range(16):
+    for i in range(8):
         arr = bytearray(good)
-        pos = rng.integers(hdr_end, data_end, 12)
+        pos = rng.integers(hdr_end, data_end, 4)
         for p in pos:
             arr[p] = int(rng.integers(0, 256))
         b.add("bitflip", f"data_{i:02d}", "fits", bytes(arr), "fit",
-              "12 random bytes of the float32 data overwritten")
-    for i in range(12):
+              "4 random bytes of the float32 data overwritten")
+    for i in range(10):
         arr = bytearray(good)
         pos = rng.integers(0, hdr_end, 3)
         for p in pos:

@@ -33,8 +33,29 @@ def limit_memory(limit: int = MEMORY_LIMIT_BYTES):
     return _apply
 
 
+_OFFLINE_CFG: list[str] = []
+
+
+def offline_config_home() -> str:
+    """An XDG config folder whose astropy.cfg forbids downloads (for child processes, which
+    tests/conftest.py does not reach): ``allow_internet = False``, ``auto_download = False``."""
+    if not _OFFLINE_CFG:
+        import atexit
+        import tempfile
+
+        d = tempfile.mkdtemp(prefix="zsieve-offline-cfg-")
+        os.mkdir(os.path.join(d, "astropy"))
+        with open(os.path.join(d, "astropy", "astropy.cfg"), "w") as fh:
+            fh.write("[utils.data]\nallow_internet = False\n[utils.iers.iers]\nauto_download = False\n")
+        atexit.register(shutil.rmtree, d, True)
+        _OFFLINE_CFG.append(d)
+    return _OFFLINE_CFG[0]
+
+
 def subprocess_env(**extra) -> dict:
+    """The environment of child processes: offline astropy, Agg backend, unbuffered output."""
     env = dict(os.environ)
+    env["XDG_CONFIG_HOME"] = offline_config_home()
     env.setdefault("MPLBACKEND", "Agg")
     env["PYTHONUNBUFFERED"] = "1"
     env.update(extra)

@@ -47,7 +47,7 @@ def _write_mocks(folder: Path, n: int = N_SPECTRA, seed: int = 11) -> list[Path]
     folder.mkdir(parents=True, exist_ok=True)
     paths = []
     kinds = ("emission-galaxy", "absorption-galaxy", "quasar", "star")
-    for i, (spec, truth) in enumerate(mock_set(n, seed, kinds=kinds, dlog10=2e-4)):
+    for i, (spec, truth) in enumerate(mock_set(n, seed, kinds=kinds, dlog10=3e-4, wave_range=(3800.0, 9200.0))):
         stem = folder / f"cdx-{i:04d}"
         if i % 3 == 0:
             p = stem.with_suffix(".fits")
@@ -120,27 +120,30 @@ def _wait_for(proc, out: Path, *, seconds: float | None = None, n_records: int |
     return False
 
 
-@pytest.fixture(scope="module")
-def fault_run(mocks, tmp_path_factory):
-    """Kill the batch N_KILLS times at seeded random points, then let it finish."""
+def kill_and_resume(data: Path, paths, root: Path, *, n_kills: int = N_KILLS, seed: int = KILL_SEED,
+                    n_inputs: int = N_SPECTRA) -> dict:
+    """Kill ``zsieve fit`` ``n_kills`` times at seeded random points, then let it finish.
+
+    Returns the output folder, the final CompletedProcess, the tally (killed, resumed, lost),
+    the lost keys and the decision lines appended between kills.
+    """
     from zsieve.refit.decisions import append_decision, make_decision
 
-    data, paths = mocks
-    root = tmp_path_factory.mktemp("fault_out")
     out, cwd = root / "out", root / "cwd"
-    cwd.mkdir()
-    rng = np.random.default_rng(KILL_SEED)
+    cwd.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
     tally = {"killed": 0, "finished_before_kill": 0, "resumed": 0, "lost": 0}
     lost: list[str] = []
     seen: dict[str, str] = {}
     decision_lines: list[bytes] = []
-    for i in range(N_KILLS):
+    for i in range(n_kills):
+        tally["resumed"] += int(i > 0)  # every run after the first resumes a killed one
         proc = _start(data, out, cwd)
         have = len(_records(out))
         if i == 0:
             killed = _wait_for(proc, out, seconds=float(rng.uniform(0.2, 2.0)))  # start-up
         else:
-            target = min(N_SPECTRA - 1, have + int(rng.integers(1, 7)))
+            target = min(n_inputs - 1, have + int(rng.integers(1, 7)))
             killed = _wait_for(proc, out, n_records=target)
             time.sleep(float(rng.uniform(0.0, 0.3)))  # somewhere inside the next write
         if proc.poll() is None:
@@ -163,7 +166,7 @@ def fault_run(mocks, tmp_path_factory):
             append_decision(out, dec)
             decision_lines.append((out / "decisions.log").read_bytes().splitlines()[-1])
     final = run_zsieve(["fit", data, "--out", out] + FIT_ARGS, timeout=RUN_TIMEOUT_S, cwd=cwd)
-    tally["resumed"] = 1
+    tally["resumed"] += 1
     recs = _records(out)
     for key in seen:
         if key not in recs:
@@ -171,6 +174,12 @@ def fault_run(mocks, tmp_path_factory):
     tally["lost"] = len(set(lost))
     return dict(out=out, data=data, paths=paths, final=final, tally=tally, lost=sorted(set(lost)),
                 decision_lines=decision_lines, cwd=cwd)
+
+
+@pytest.fixture(scope="module")
+def fault_run(mocks, tmp_path_factory):
+    data, paths = mocks
+    return kill_and_resume(data, paths, tmp_path_factory.mktemp("fault_out"))
 
 
 def test_kills_happened_mid_run(fault_run):

@@ -25,16 +25,16 @@ C_KMS = 299792.458  # km/s, SI definition
 
 FAST = settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 
-# Vacuum rest wavelengths, NIST Atomic Spectra Database (from memory).
+# Vacuum rest wavelengths, NIST Atomic Spectra Database (from memory). Each entry is a line or
+# a doublet whose ratio atomic physics fixes ([O III] 5008/4960 = 2.98 and [N II] 6585/6550 =
+# 3.05, the transition probabilities; from memory), so every spectrum is a physical one.
 STRONG_LINES = {
-    "[O II] 3729": 3729.88,
-    "H-beta": 4862.68,
-    "[O III] 5008": 5008.24,
-    "H-alpha": 6564.61,
-    "[N II] 6585": 6585.27,
-    "[S II] 6718": 6718.29,
-    "[Ne III] 3870": 3870.16,
-    "H-gamma": 4341.69,
+    "H-alpha": ((6564.61, 1.0),),
+    "H-beta": ((4862.68, 1.0),),
+    "H-gamma": ((4341.69, 1.0),),
+    "H-delta": ((4102.89, 1.0),),
+    "[O III] 5008": ((5008.24, 1.0), (4960.30, 1 / 2.98)),
+    "[N II] 6585": ((6585.27, 1.0), (6549.86, 1 / 3.05)),
 }
 WAVE_LO, WAVE_HI = 3700.0, 9300.0
 
@@ -49,9 +49,10 @@ def _three_line_spectrum(z, names, snr, seed):
     noise = 0.1
     flux = np.ones_like(wave)
     for name in names:
-        centre = STRONG_LINES[name] * (1 + z)
-        s = centre * 90.0 / C_KMS  # 90 km/s Gaussian sigma
-        flux += snr * noise * np.exp(-0.5 * ((wave - centre) / s) ** 2)
+        for rest, rel in STRONG_LINES[name]:
+            centre = rest * (1 + z)
+            s = centre * 90.0 / C_KMS  # 90 km/s Gaussian sigma
+            flux += rel * snr * noise * np.exp(-0.5 * ((wave - centre) / s) ** 2)
     flux += rng.normal(0.0, noise, wave.size)
     return Spectrum(wave, flux, np.full(wave.size, noise), meta=SpectrumMeta(source="property"))
 
@@ -59,26 +60,26 @@ def _three_line_spectrum(z, names, snr, seed):
 @st.composite
 def _line_sets(draw):
     names = draw(st.lists(st.sampled_from(sorted(STRONG_LINES)), min_size=3, max_size=3, unique=True))
-    rest = [STRONG_LINES[n] for n in names]
-    lo = max(0.0, WAVE_LO / min(rest) - 1 + 0.02)
+    rest = [w for n in names for w, _ in STRONG_LINES[n]]
+    lo = max(0.002, WAVE_LO / min(rest) - 1 + 0.02)  # z = 0 itself: see the test below
     hi = WAVE_HI / max(rest) - 1 - 0.02
     if hi <= lo + 1e-3:
         from hypothesis import assume
 
         assume(False)
     z = draw(st.floats(lo, hi))
-    # three distinct lines must not blend into one feature
+    # the components stay resolved (sigma ~ 2 A): H-alpha and [N II] 6550 are 14.8 A apart at rest
     obs = sorted(r * (1 + z) for r in rest)
     from hypothesis import assume
 
-    assume(min(np.diff(obs)) > 30.0)
+    assume(min(np.diff(obs)) > 12.0)
     snr = draw(st.floats(15.0, 60.0))
     seed = draw(st.integers(0, 2**31 - 1))
     return z, names, snr, seed
 
 
-@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.too_slow,
-                                                                  HealthCheck.filter_too_much])
+@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.too_slow,
+                                                                 HealthCheck.filter_too_much])
 @given(_line_sets())
 def test_z_recovered_within_stated_error(params):
     from zsieve.engine.measure import MeasureConfig, measure
@@ -93,6 +94,34 @@ def test_z_recovered_within_stated_error(params):
     floor = 2.0 / C_KMS * (1 + z)
     assert abs(res.z - z) < 5 * err + floor, (res.z, z, err, res.grade, names, snr)
     assert res.grade != "none"
+
+
+def test_emission_lines_at_the_lower_edge_z0():
+    """H-alpha, H-beta and H-gamma at rest (z = 0, the default z_min): the Balmer series is
+    unmistakable (Rydberg; vacuum values NIST, from memory), so the answer must be z ~ 0."""
+    from zsieve.engine.measure import MeasureConfig, measure
+
+    spec = _three_line_spectrum(0.0, ["H-alpha", "H-beta", "H-gamma"], 15.0, 2)
+    res = measure(spec, MeasureConfig(n_resamples=20, seed=2, mask_sky=False))
+    assert abs(res.z) < 1e-4, (res.z, res.grade, res.message)
+
+
+@pytest.mark.parametrize("pixel, value", [(700, 1e30), (1300, 1e6), (95, -1e6)])
+def test_one_wild_pixel_does_not_hide_a_strong_galaxy(pixel, value):
+    """A single wild pixel (a cosmic-ray hit or a flipped byte; single-pixel spikes are the
+    commonest defect of raw spectra, common practice) next to six strong lines: the answer
+    must stay the galaxy's redshift."""
+    import corpus
+
+    from zsieve.engine.measure import MeasureConfig, measure
+    from zsieve.spectrum import Spectrum
+
+    rng = np.random.default_rng(pixel)
+    wave = corpus._log_grid()
+    flux, sigma = corpus._noisy(wave, rng)
+    flux[pixel] = value
+    res = measure(Spectrum(wave, flux, sigma), MeasureConfig(n_resamples=10, seed=1))
+    assert abs(res.z - corpus.Z_TRUE) < 0.002 * (1 + corpus.Z_TRUE), (res.z, res.grade, res.flags)
 
 
 # ----------------------------------------------------------------- air <-> vacuum
@@ -110,8 +139,9 @@ def test_air_vacuum_round_trip(wave):
     assert abs(float(vacuum_to_air(air_to_vacuum(wave))) - wave) < 1e-6
     assert abs(float(air_to_vacuum(vacuum_to_air(wave))) - wave) < 1e-6
     vac = float(air_to_vacuum(wave))
-    # vacuum is longer by n - 1 ~ 2.8e-4 (the optical index of air, common practice)
-    assert 2.6e-4 < vac / wave - 1 < 3.0e-4
+    # vacuum is longer by n - 1: 2.7e-4 in the near infrared to 3.2e-4 at 2000 A (the
+    # refractive index of air, common practice)
+    assert 2.6e-4 < vac / wave - 1 < 3.3e-4
     assert abs(vac / float(_morton_n(vac)) - wave) < 1e-6
 
 
@@ -205,9 +235,12 @@ def test_loglam_resampling_conserves_flux(centre, width_pix, ratio, amp):
     # pointwise: every resampled value within the linear-interpolation bound of the true profile
     truth = amp * np.exp(-0.5 * ((m.grid - mu) / s) ** 2)
     assert np.max(np.abs(out - truth)) <= h**2 / 8 * amp / s**2 * (1 + 1e-9) + 1e-12 * amp
-    # the centroid does not move (a misplaced grid would shift it by a fraction of a pixel)
+    # the centroid does not move (a misplaced grid would shift it by a fraction of a pixel).
+    # Bound: |d centroid| <= (h^2/8) * integral |x - mu| |f''| dx / integral f
+    #      = (h^2/8) * 2.852 / (s sqrt(2 pi))  (the Gaussian integral worked out by hand:
+    #        integral |u| |u^2 - 1| exp(-u^2/2) du = 8 exp(-1/2) - 2 = 2.852)
     centroid = trapezoid(out * m.grid, m.grid) / got
-    assert abs(centroid - mu) < 0.01 * h
+    assert abs(centroid - mu) <= h**2 / 8 * 2.852 / (s * math.sqrt(2 * math.pi)) + 1e-3 * s
     # weights: interpolating two unit-variance pixels never loses information below 1/1 and
     # never exceeds 2 (t = 1/2 gives var 1/2)
     ok = w[0] > 0
