@@ -21,8 +21,10 @@ The evidence of an answer is:
   ``noise-from-scatter`` the file had no uncertainties (noise estimated from the flux scatter).
 
 Thresholds (``GRADE_RULES``) were set by measuring on the mock benchmark
-(``tests/benchmarks/accuracy.py``): the fraction of correct answers per grade is printed there
-and quoted in the README.
+(``tests/benchmarks/accuracy.py``, 400 mocks of zsieve.simulate, seed 7, 100 resamples):
+secure 179 of 179 right (target >= 99%), likely 26 of 26 right (target >= 90%), tentative
+55% right, none 47%; no secure or likely answer on 59 pure-noise spectra nor on 64 lone lines.
+The grades are conservative: too few likely answers to pin that rate below 100%.
 
 Examples
 --------

@@ -409,7 +409,9 @@ def _n_independent(fit: CandidateFit, rows) -> int:
 def _nearest_r(xc, fit):
     if xc is None:
         return math.nan
-    rs = [p.r_tdr for p in xc["peaks"] if p.template_class == fit.cls and _same_z(p.z, fit.z, 500.0)]
+    # quasar peaks sit within the broad-line offsets and widths (thousands of km/s)
+    window = 3000.0 if fit.cls == "quasar" else 500.0
+    rs = [p.r_tdr for p in xc["peaks"] if p.template_class == fit.cls and _same_z(p.z, fit.z, window)]
     return float(max(rs)) if rs else math.nan
 
 
