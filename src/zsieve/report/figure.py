@@ -388,8 +388,8 @@ def draw_figure(result, spectrum, *, dpi: int = 100):
     # --- text
     axt = fig.add_subplot(bottom[0, 2])
     axt.axis("off")
-    axt.text(0.0, 1.02, _text_block(result), transform=axt.transAxes, va="top", ha="left", fontsize=7.8,
-             family="monospace", linespacing=1.25)
+    axt.text(0.0, 1.02, _text_block(result), transform=axt.transAxes, va="top", ha="left", fontsize=7.4,
+             family="monospace", linespacing=1.18)
     return fig
 
 
