@@ -17,6 +17,7 @@ import shutil
 import signal
 import subprocess
 import sys
+import time
 import warnings
 from pathlib import Path
 
@@ -162,6 +163,29 @@ def test_cli_scheduler_option(data, reference, local_cluster, tmp_path, capsys):
     assert rc == 0
     _assert_same_records(out, reference, only={"cdx-0101.fits.json", "cdx-0102.fits.json"})
     assert main(["fit", *files, "--out", str(out), "--scheduler", "local:zero"]) == 2
+
+
+def test_interrupted_dask_run_keeps_its_records_and_resumes(data, reference, local_cluster, tmp_path):
+    lc, _ = local_cluster
+    out = tmp_path / "out"
+    files = [str(p) for p in sorted(data.glob("cdx-*.fits"))]
+
+    pressed = []
+
+    def ctrl_c(row):  # Ctrl-C, once, as the first measurement comes back
+        if row["status"] == "ok" and not pressed:
+            pressed.append(row["key"])
+            raise KeyboardInterrupt
+
+    s = cluster.run(files, out, _settings(), scheduler=lc.scheduler_address, on_row=ctrl_c)
+    assert s.interrupted
+    made = _records(out)
+    assert 0 < len(made) < len(files)
+    time.sleep(2.0)  # tasks not started were cancelled, those running were awaited: nothing comes late
+    assert _records(out) == made and len(_table(out)) == len(made)
+    s = cluster.run(files, out, _settings(), scheduler=lc.scheduler_address)
+    assert not s.interrupted and s.n_reused == len(made) and s.n_fitted_now == len(files) - len(made)
+    _assert_same_records(out, reference, only={os.path.basename(f) + ".json" for f in files})
 
 
 def test_killed_worker_loses_and_duplicates_nothing(data, reference, local_cluster, tmp_path):

@@ -172,14 +172,16 @@ def _threads(client) -> int:
 
 
 def run_tasks(ctx, settings, tasks: Iterable[tuple | None], take: Callable[[list[dict]], None], bar, *,
-              client=None, retries: int = 2) -> None:
+              client=None, retries: int = 2, wait_s: float = 120.0) -> None:
     """Run the batch's ``tasks`` on Dask; the executor :func:`zsieve.batch.run_batch` calls.
 
     ``tasks`` yields ``None`` (nothing to run: a reused or skipped file) or a task tuple
     ``(kind, InputFile, sha256, extra)``; every finished task's rows go to ``take`` (in the
     order tasks finish). The client is ``client`` if given, else ``settings.scheduler`` (an
     address, ``local:N`` or a Client). At most ``settings.in_flight_per_job`` tasks per
-    worker thread are submitted at once (at least 2 in all).
+    worker thread are submitted at once (at least 2 in all). On Ctrl-C (KeyboardInterrupt)
+    tasks not started are cancelled and those running are awaited (up to ``wait_s``) and taken,
+    then the interrupt goes on to the batch layer, which writes the summary.
     """
     distributed = _distributed()
     from . import batch
@@ -190,7 +192,7 @@ def run_tasks(ctx, settings, tasks: Iterable[tuple | None], take: Callable[[list
         if scheduler is None:
             raise _batch_error("run_tasks needs a Dask client or settings.scheduler")
         with connect(scheduler) as c:
-            return run_tasks(ctx, settings, tasks, take, bar, client=c, retries=retries)
+            return run_tasks(ctx, settings, tasks, take, bar, client=c, retries=retries, wait_s=wait_s)
 
     level = logging.getLogger("zsieve").getEffectiveLevel()
     limit = max(2, _threads(client) * max(1, int(settings.in_flight_per_job)))
@@ -231,14 +233,52 @@ def run_tasks(ctx, settings, tasks: Iterable[tuple | None], take: Callable[[list
                     collect(next(ac))
             for fut in ac:
                 collect(fut)
+        except KeyboardInterrupt:
+            # as the local pool does: files not started are dropped, those being measured finish,
+            # so the summary written next reflects every record on disk
+            if pending:
+                log.warning("interrupted: waiting for the files being measured to finish")
+                _wind_down(client, distributed, pending, wait_s)
+                for fut in list(pending):  # finished before or while winding down: their records exist
+                    if fut.status in ("finished", "error"):
+                        collect(fut)
+            raise
         except BaseException:
             if pending:
                 log.info("cancelling %d Dask task(s) still in flight", len(pending))
-                try:
-                    client.cancel(list(pending))
-                except Exception as exc:  # the scheduler may be gone already
-                    log.debug("cancel failed: %s", exc)
+                _cancel(client, list(pending))
             raise
+
+
+def _cancel(client, futures) -> None:
+    try:
+        client.cancel(futures)
+    except Exception as exc:  # the scheduler may be gone already
+        log.debug("cancel failed: %s", exc)
+
+
+def _wind_down(client, distributed, pending: dict, wait_s: float) -> None:
+    """Cancel the tasks no worker has taken; wait up to ``wait_s`` for those being run."""
+    keys = [f.key for f in pending]
+
+    def states(dask_scheduler=None):  # runs on the scheduler (pickled by value)
+        return {k: dask_scheduler.tasks[k].state for k in keys if k in dask_scheduler.tasks}
+
+    try:
+        state = client.run_on_scheduler(states)
+    except Exception as exc:  # cannot tell: cancel everything
+        log.debug("task states unknown (%s)", exc)
+        state = {}
+    running = [f for f in pending if state.get(f.key) == "processing"]
+    done = ("processing", "memory", "erred")  # being run, or finished and not yet taken
+    _cancel(client, [f for f in pending if state.get(f.key) not in done])
+    if running:
+        try:
+            distributed.wait(running, timeout=wait_s)
+        except TimeoutError:
+            log.warning("%d file(s) still being measured after %.0f s; their records may appear later",
+                        sum(f.status == "pending" for f in running), wait_s)
+            _cancel(client, running)
 
 
 def run(paths: Iterable[str], out_dir, settings=None, *, scheduler="local:2", on_row=None,
