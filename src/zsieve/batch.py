@@ -490,7 +490,7 @@ def _prepare_out_dir(out_dir: Path) -> None:
         (out_dir / OBJECTS).mkdir(parents=True, exist_ok=True)
         write_atomic(out_dir / _LOCK_NAME, "")
     except OSError as exc:
-        raise BatchError(f"{out_dir}: output folder cannot be written ({exc.strerror or exc})") from None
+        raise _unwritable(out_dir, exc) from None
     remove_stale_parts(out_dir)
     remove_stale_parts(out_dir / OBJECTS)
 
@@ -608,7 +608,7 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
         try:
             write_atomic(out_dir / "run.json", json.dumps(to_jsonable({**meta, "started": _utc()}), indent=1))
         except OSError as exc:
-            raise BatchError(f"{out_dir}: output folder cannot be written ({exc.strerror or exc})") from None
+            raise _unwritable(out_dir, exc) from None
         rows, facts = _existing(out_dir)
         hands: dict[str, dict] = {}
         if settings.keep_hand:
@@ -685,32 +685,40 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
                 yield ("fit", item, sha, {k: v for k, v in hands.items() if k.split("@")[0] == base})
 
         bar = _progress_bar(settings.progress, lambda: sum(1 for _ in discover(paths, exclude=[str(out_dir)], root=root)))
-        try:
-            if settings.scheduler is not None:
-                from .cluster import run_tasks
+        try:  # an OSError that reaches here is the output folder failing (full disk, quota, ...)
+            try:
+                if settings.scheduler is not None:
+                    from .cluster import run_tasks
 
-                run_tasks(ctx, settings, tasks(), take, bar)
-            elif settings.jobs <= 1:
-                _init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel(), pool_worker=False)
-                for task in tasks():
-                    if task is not None:
-                        take(_run_task(task), fitted=task[0] == "fit")
-                    bar.update(1)
-            else:
-                _run_pool(ctx, settings, tasks(), take, bar)
-        except KeyboardInterrupt:
-            summary.interrupted = True
-            log.warning("interrupted: writing the summary of the records made so far")
-        finally:
-            bar.close()
-            _drop_superseded(out_dir, rows, facts, touched)
-            checkpoint(final=True)
+                    run_tasks(ctx, settings, tasks(), take, bar)
+                elif settings.jobs <= 1:
+                    _init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel(), pool_worker=False)
+                    for task in tasks():
+                        if task is not None:
+                            take(_run_task(task), fitted=task[0] == "fit")
+                        bar.update(1)
+                else:
+                    _run_pool(ctx, settings, tasks(), take, bar)
+            except KeyboardInterrupt:
+                summary.interrupted = True
+                log.warning("interrupted: writing the summary of the records made so far")
+            finally:
+                bar.close()
+                _drop_superseded(out_dir, rows, facts, touched)
+                checkpoint(final=True)
+        except OSError as exc:
+            raise _unwritable(out_dir, exc) from None
         summary.counts = tally(rows.values())
         summary.rows = len(rows)
         summary.elapsed_s = time.perf_counter() - t0
         if summary.n_files == 0 and not summary.interrupted:
             raise BatchError("no input files found in " + ", ".join(paths))
         return summary
+
+
+def _unwritable(out_dir, exc: OSError) -> BatchError:
+    """The one-line error for an output folder that stopped taking writes."""
+    return BatchError(f"{out_dir}: output folder cannot be written ({exc.strerror or exc})")
 
 
 def _update_hands(ctx: _Context, keys: list[str], hands: dict[str, dict]) -> list[dict]:

@@ -194,6 +194,12 @@ def get_cosmology(spec=None):
     >>> c = get_cosmology({"H0": 70, "Om0": 0.3, "Ode0": 0.7, "w0": -0.8})
     >>> type(c).__name__, float(c.w0)
     ('FlatwCDM', -0.8)
+
+    A record written by :func:`cosmology_record` (as stored in every output) comes back as
+    the same model:
+
+    >>> get_cosmology(cosmology_record(get_cosmology("WMAP9"))).name
+    'WMAP9'
     >>> get_cosmology({"H0": 70, "Om0": -0.1})
     Traceback (most recent call last):
     ...
@@ -208,6 +214,10 @@ def get_cosmology(spec=None):
     if isinstance(spec, str):
         return _from_name(spec)
     if isinstance(spec, Mapping):
+        if "H0_kms_mpc" in spec or "class" in spec:
+            spec = _params_from_record(spec)
+            if isinstance(spec, str):
+                return _from_name(spec)
         if set(spec) <= {"name"} and spec.get("name"):
             return _from_name(str(spec["name"]))
         return _from_params(spec)
@@ -215,6 +225,18 @@ def get_cosmology(spec=None):
         f"cannot make a cosmology from {type(spec).__name__}; give a name, an astropy FLRW "
         "instance or a dict of H0/Om0/Ode0/w0"
     )
+
+
+def _params_from_record(record: Mapping):
+    """The choice :func:`get_cosmology` takes for a :func:`cosmology_record`: the realization's
+    name where it has one, else its parameters."""
+    if record.get("name"):
+        return str(record["name"])
+    choice = {"H0": record.get("H0_kms_mpc"), "Om0": record.get("Om0")}
+    for mine, theirs in (("Ode0", "Ode0"), ("w0", "w0"), ("Tcmb0", "Tcmb0_K")):
+        if record.get(theirs) is not None:
+            choice[mine] = record[theirs]
+    return choice
 
 
 def cosmology_record(cosmo) -> dict:

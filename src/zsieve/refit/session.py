@@ -835,7 +835,7 @@ class RefitSession:
         from ..report import hand_cosmology
 
         prov = dict(before.provenance or {})
-        hand = hand_cosmology(to_jsonable(hand), _cosmology_choice(prov.get("cosmology_spec")))
+        hand = hand_cosmology(to_jsonable(hand), prov.get("cosmology_spec"))
         final = before.replace(hand=to_jsonable(hand), provenance=prov)
         self.decisions.append(rec)
         if self.out_dir is not None:
@@ -956,29 +956,6 @@ def in_force_result(result: FitResult) -> FitResult:
         changes["lines"] = [LineMatch(**{k: (math.nan if v is None else v) for k, v in d.items() if k in names})
                             for d in hand["lines"]]
     return result.replace(**changes)
-
-
-def _cosmology_choice(record: dict[str, Any] | None):
-    """What ``zsieve.cosmology.get_cosmology`` needs to rebuild the cosmology a batch recorded
-    (its ``cosmology_record``): the realization's name, else its parameters; ``None`` (the
-    default) when nothing was recorded.
-
-    >>> _cosmology_choice({"name": "WMAP9", "H0_kms_mpc": 69.32})
-    'WMAP9'
-    >>> _cosmology_choice({"name": None, "H0_kms_mpc": 70.0, "Om0": 0.3, "Ode0": 0.7, "w0": -1.0})["H0"]
-    70.0
-    """
-    if not record:
-        return None
-    if record.get("name"):
-        return str(record["name"])
-    if record.get("H0_kms_mpc") is None or record.get("Om0") is None:
-        return None
-    choice = {"H0": record["H0_kms_mpc"], "Om0": record["Om0"]}
-    for mine, theirs in (("Ode0", "Ode0"), ("w0", "w0"), ("Tcmb0", "Tcmb0_K")):
-        if record.get(theirs) is not None:
-            choice[mine] = record[theirs]
-    return choice
 
 
 def _object_key(path, index: int, n_in_file: int) -> str:
