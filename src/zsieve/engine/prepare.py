@@ -35,6 +35,7 @@ True
 from __future__ import annotations
 
 import logging
+from functools import lru_cache
 from dataclasses import dataclass
 
 import numpy as np
@@ -83,6 +84,13 @@ def sky_ranges(min_strength: float = 0.2, pad_A: float = 4.0, bands: bool = True
     are not masked: there the uncertainty array already carries the sky noise. Returns an
     ``(n, 2)`` array; empty (with a warning) if the sky list is unavailable.
     """
+    out = _sky_ranges_cached(float(min_strength), float(pad_A), bool(bands))
+    return out.copy()
+
+
+@lru_cache(maxsize=32)
+def _sky_ranges_cached(min_strength: float, pad_A: float, bands: bool) -> np.ndarray:
+    """:func:`sky_ranges` of the bundled sky list, read once per argument set."""
     try:
         from zsieve.lines import sky_features
     except ImportError:
@@ -157,6 +165,9 @@ def continuum_batch(flux2d, ivar, lnwave, *, scale_kms: float = 8000.0, clip: fl
     centre = np.add.reduceat(lnwave, np.arange(0, npix, block)) / np.diff(
         np.append(np.arange(0, npix, block), npix))
     good0 = ivar > 0
+    if use is not None and np.ndim(use) == 1 and ivar.shape[0] == n and (n == 1 or ivar.strides[0] == 0):
+        return _continuum_fixed(flux2d, ivar[0], np.asarray(use, dtype=bool) & good0[0], centre, block,
+                                nblk, lnwave)
     f0 = np.where(good0, flux2d, 0.0)
     if use is not None:
         use = np.broadcast_to(np.asarray(use, dtype=bool), flux2d.shape) & good0
@@ -184,6 +195,29 @@ def continuum_batch(flux2d, ivar, lnwave, *, scale_kms: float = 8000.0, clip: fl
             coll = np.abs(num) / np.sqrt(den)
         use = good0 & (pix_dev < clip) & ~(coll > clip + 1.0)
     return (cont, use) if return_use else cont
+
+
+def _continuum_fixed(flux2d, ivar, use, centre, block, nblk, lnwave):
+    """Continuum of many rows with one fixed pixel selection and one ``ivar`` (a linear map).
+
+    The block means are one weighted sum per block, and the interpolation between block
+    centres is the same matrix for every row, so all rows take two matrix products; the
+    result equals the general path of :func:`continuum_batch` (no clipping) to rounding.
+    """
+    n, npix = flux2d.shape
+    w = np.where(use, ivar, 0.0)
+    sw = np.add.reduceat(w, np.arange(0, npix, block))
+    ok = sw > 0
+    # weighted block sums of every row: (n, npix) @ (npix, nblk) block indicator, done by reduceat
+    wf = np.where(use[None, :], flux2d, 0.0) * w[None, :]
+    sums = np.add.reduceat(wf, np.arange(0, npix, block), axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(ok[None, :], sums / np.where(ok, sw, 1.0)[None, :], 0.0)
+    # interpolation matrix from block values to pixels (columns: blocks), built from unit vectors
+    M = _interp_blocks(centre, np.eye(nblk), np.broadcast_to(ok, (nblk, nblk)), lnwave)  # (nblk, npix)
+    if not ok.any():
+        return np.zeros((n, npix))
+    return mean @ M
 
 
 def _interp_blocks(centre, value, ok, x):

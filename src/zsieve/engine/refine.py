@@ -35,6 +35,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.linalg import solve_triangular
 from scipy.optimize import least_squares, nnls
 
 from .prepare import C_KMS
@@ -114,13 +115,14 @@ class LineModel:
         # each line's own slice of the window pixels (profiles are negligible outside it)
         self._lo = np.searchsorted(self.x, (obs - half)[self._use])
         self._hi = np.searchsorted(self.x, (obs + half)[self._use])
-        # padded (line, k) index matrix of those slices, for one vectorised evaluation
-        nwin = self._hi - self._lo
-        kmax = int(nwin.max()) if nwin.size else 0
-        k = np.arange(kmax)
-        self._valid = k[None, :] < nwin[:, None]
-        self._idx = np.where(self._valid, self._lo[:, None] + k[None, :], 0)
-        self._flat = self._idx * max(groups.size, 1) + self.col_of_line[self._use][:, None]
+        # the (line, pixel) pairs of those slices, flattened (ragged: no padding), for one
+        # vectorised evaluation of all profiles
+        nwin = np.maximum(self._hi - self._lo, 0)
+        self._eline = np.repeat(np.arange(self._use.size), nwin)
+        start = np.concatenate([[0], np.cumsum(nwin)[:-1]]).astype(int)
+        self._epix = self._lo[self._eline] + (np.arange(self._eline.size) - start[self._eline])
+        self._ex = self.x[self._epix]
+        self._eflat = self._epix * max(groups.size, 1) + self.col_of_line[self._use][self._eline]
 
     @property
     def n_cols(self) -> int:
@@ -151,19 +153,36 @@ class LineModel:
             return G, dprof @ self._onehot
         x = self.x
         size = x.size * self.n_cols
-        if self._idx.size == 0:
+        if self._eline.size == 0:
             G = np.zeros((x.size, self.n_cols))
             return (G, G.copy()) if deriv else G
-        xs = x[self._idx]
-        u = (xs - mu[:, None]) / s[:, None]
-        p = np.where(self._valid, np.exp(-0.5 * u * u), 0.0) * (self._coef / (SQRT2PI * s))[:, None]
-        G = np.bincount(self._flat.ravel(), p.ravel(), minlength=size).reshape(x.size, self.n_cols)
+        e = self._eline
+        u = (self._ex - mu[e]) / s[e]
+        p = np.exp(-0.5 * u * u) * (self._coef / (SQRT2PI * s))[e]
+        G = np.bincount(self._eflat, p, minlength=size).reshape(x.size, self.n_cols)
         if not deriv:
             return G
         # d/dz: centre and sigma both scale with (1+z)
-        dp = p * (u / s[:, None] * (mu / (1 + z))[:, None] + (u * u - 1.0) / (1 + z))
-        D = np.bincount(self._flat.ravel(), dp.ravel(), minlength=size).reshape(x.size, self.n_cols)
+        dp = p * (u / s[e] * (mu / (1 + z))[e] + (u * u - 1.0) / (1 + z))
+        D = np.bincount(self._eflat, dp, minlength=size).reshape(x.size, self.n_cols)
         return G, D
+
+    def design_many(self, zs, width_kms, broad_scale=1.0):
+        """:meth:`design` at many redshifts at once: array ``(len(zs), npix_window, n_cols)``."""
+        zs = np.asarray(zs, dtype=float)
+        size = self.x.size * self.n_cols
+        if self._eline.size == 0 or size == 0:
+            return np.zeros((zs.size, self.x.size, self.n_cols))
+        use, e = self._use, self._eline
+        base = self.centres(0.0)[use]
+        sv = self._sigma_v(width_kms, broad_scale)[use] / C_KMS
+        mu = (1 + zs)[:, None] * base[None, :]  # (nz, lines)
+        s = mu * sv[None, :]
+        u = (self._ex[None, :] - mu[:, e]) / s[:, e]
+        p = np.exp(-0.5 * u * u) * (self._coef[None, :] / (SQRT2PI * s))[:, e]
+        flat = (np.arange(zs.size) * size)[:, None] + self._eflat[None, :]
+        G = np.bincount(flat.ravel(), p.ravel(), minlength=zs.size * size)
+        return G.reshape(zs.size, self.x.size, self.n_cols)
 
     def design_dwidth(self, z, width_kms, broad_scale=1.0):
         """d(columns)/d(narrow width in km/s) and d/d(broad scale), analytic."""
@@ -173,36 +192,105 @@ class LineModel:
         sv = self._sigma_v(width_kms, broad_scale)[use]
         s = mu * sv / C_KMS
         size = self.x.size * self.n_cols
-        if self._idx.size == 0:
+        if self._eline.size == 0:
             G = np.zeros((self.x.size, self.n_cols))
             return G, G.copy()
-        u = (self.x[self._idx] - mu[:, None]) / s[:, None]
-        p = np.where(self._valid, np.exp(-0.5 * u * u), 0.0) * (self._coef / (SQRT2PI * s))[:, None]
+        e = self._eline
+        u = (self._ex - mu[e]) / s[e]
+        p = np.exp(-0.5 * u * u) * (self._coef / (SQRT2PI * s))[e]
         dlns = (u * u - 1.0) * p  # d prof / d ln s
         broad = ls.broad[use]
         # d ln s / d width (narrow) and d ln s / d scale (broad)
         dn = np.where(broad, 0.0, width_kms / np.maximum(sv * sv, 1e-12))
         bw = ls.width_kms[use] / 2.3548
         db = np.where(broad, broad_scale * bw * bw / np.maximum(sv * sv, 1e-12), 0.0)
-        f = self._flat.ravel()
-        dW = np.bincount(f, (dlns * dn[:, None]).ravel(), minlength=size).reshape(self.x.size, self.n_cols)
-        dB = np.bincount(f, (dlns * db[:, None]).ravel(), minlength=size).reshape(self.x.size, self.n_cols)
+        f = self._eflat
+        dW = np.bincount(f, dlns * dn[e], minlength=size).reshape(self.x.size, self.n_cols)
+        dB = np.bincount(f, dlns * db[e], minlength=size).reshape(self.x.size, self.n_cols)
         return dW, dB
 
     def fit_linear(self, r, z, width_kms, broad_scale=1.0):
         """Non-negative amplitudes at fixed z and widths; returns (amps, delta_chi2)."""
         if self.n_cols == 0 or self.pix.size == 0:
             return np.zeros(0), 0.0
-        G = self.design(z, width_kms, broad_scale)
-        sw = np.sqrt(self.w)
-        y = r[self.pix] * sw
-        A = G * sw[:, None]
+        return nnls_weighted(self.design(z, width_kms, broad_scale), self.w, r[self.pix])
+
+
+def nnls_weighted(G, w, r):
+    """Non-negative weighted least squares ``min sum w (G a - r)^2``, ``a >= 0``, solved on the
+    normal equations: returns ``(a, delta_chi2)`` with ``delta_chi2 = sum w r^2 - chi2(a)``.
+
+    With the Cholesky factor ``L`` of ``G^T W G`` the problem equals ``min |L^T a - c|^2`` with
+    ``L c = G^T W r`` (an ``n_cols``-square NNLS instead of an ``npix``-row one); the design
+    matrix is reduced once, which is what makes the many fits of a z scan cheap.
+
+    >>> G = np.array([[1.0, 0.0], [1.0, 1.0], [0.0, 1.0]])
+    >>> a, d = nnls_weighted(G, np.ones(3), np.array([1.0, 0.0, -1.0]))
+    >>> [round(float(v), 6) for v in a], round(d, 6)
+    ([0.5, 0.0], 0.5)
+    """
+    Gw = G * w[:, None]
+    F = G.T @ Gw
+    b = Gw.T @ r
+    n = F.shape[0]
+    if n == 0:
+        return np.zeros(0), 0.0
+    ridge = 1e-12 * max(float(np.trace(F)) / n, 1e-300)
+    try:
+        L = np.linalg.cholesky(F + ridge * np.eye(n))
+    except np.linalg.LinAlgError:
+        L = None
+    if L is not None and np.all(np.isfinite(L)):
+        c = solve_triangular(L, b, lower=True)
         try:
-            a, rnorm = nnls(A, y, maxiter=20 * max(1, self.n_cols))
+            a, rn = nnls(L.T, c, maxiter=20 * max(1, n))
+            return a, float(c @ c - rn * rn)
         except RuntimeError:
-            a = np.clip(np.linalg.lstsq(A, y, rcond=None)[0], 0, None)
-            rnorm = float(np.linalg.norm(A @ a - y))
-        return a, float(y @ y - rnorm**2)
+            pass
+    sw = np.sqrt(w)
+    A, y = G * sw[:, None], r * sw
+    try:
+        a, rn = nnls(A, y, maxiter=20 * max(1, n))
+    except RuntimeError:
+        a = np.clip(np.linalg.lstsq(A, y, rcond=None)[0], 0, None)
+        rn = float(np.linalg.norm(A @ a - y))
+    return a, float(y @ y - rn * rn)
+
+
+
+def nnls_gain_many(Gs, w, r) -> np.ndarray:
+    """``delta_chi2`` of :func:`nnls_weighted` for a stack of design matrices ``(nz, npix, k)``.
+
+    The normal equations of all problems are formed and solved together; where the
+    unconstrained solution is already non-negative it *is* the NNLS solution, and only the
+    others go through the (small, reduced) NNLS one by one.
+
+    >>> G = np.array([[1.0, 0.0], [1.0, 1.0], [0.0, 1.0]])
+    >>> r = np.array([1.0, 0.0, -1.0])
+    >>> bool(np.isclose(nnls_gain_many(np.stack([G, G]), np.ones(3), r)[0], nnls_weighted(G, np.ones(3), r)[1]))
+    True
+    """
+    nz, _, k = Gs.shape
+    if k == 0 or nz == 0:
+        return np.zeros(nz)
+    GwT = (Gs * w[None, :, None]).transpose(0, 2, 1)
+    F = GwT @ Gs
+    b = GwT @ r
+    ridge = 1e-12 * np.maximum(np.trace(F, axis1=1, axis2=2) / k, 1e-300)
+    try:
+        L = np.linalg.cholesky(F + ridge[:, None, None] * np.eye(k)[None])
+        c = np.linalg.solve(L, b[:, :, None])[:, :, 0]
+        a = np.linalg.solve(L.transpose(0, 2, 1), c[:, :, None])[:, :, 0]
+    except np.linalg.LinAlgError:
+        return np.array([nnls_weighted(G, w, r)[1] for G in Gs])
+    gain = np.einsum("ij,ij->i", c, c)
+    for i in np.flatnonzero((a < 0).any(axis=1) | ~np.isfinite(gain)):  # constrained ones
+        try:
+            _, rn = nnls(L[i].T, c[i], maxiter=20 * max(1, k))
+            gain[i] = float(c[i] @ c[i] - rn * rn)
+        except (RuntimeError, ValueError):
+            gain[i] = nnls_weighted(Gs[i], w, r)[1]
+    return gain
 
 
 @dataclass
@@ -253,7 +341,13 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     if model.n_cols == 0:
         return CandidateFit(cls, z0, math.inf, w0, 1.0, np.zeros(0), 0.0, 0, model, ok=False)
     sw = np.sqrt(model.w)
-    y = resid[model.pix] * sw
+    rr = resid[model.pix]
+    y = rr * sw
+    yy = float(y @ y)
+
+    def chi2(p):
+        """Chi-square at p with the amplitudes solved."""
+        return yy - solve(p)[2]
 
     def unpack(p):
         return p[0], p[1], (p[2] if has_broad else 1.0)
@@ -265,12 +359,9 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         hit = cache.get(key)
         if hit is None:
             z, wk, bs = unpack(p)
-            A = model.design(z, wk, bs) * sw[:, None]
-            try:
-                a, _ = nnls(A, y, maxiter=20 * max(1, model.n_cols))
-            except RuntimeError:
-                a = np.clip(np.linalg.lstsq(A, y, rcond=None)[0], 0, None)
-            hit = (A @ a - y, a)
+            G = model.design(z, wk, bs)
+            a, gain = nnls_weighted(G, model.w, rr)
+            hit = ((G @ a) * sw - y, a, gain)
             cache.clear()
             cache[key] = hit
         return hit
@@ -302,8 +393,12 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         sv_min = float(np.min(model._sigma_v(w0, 1.0)))
         n_scan = int(np.clip(2 * z_tol / (1 + z0) * C_KMS / (0.7 * sv_min), 9, 41))
         zs = z0 + np.linspace(-z_tol, z_tol, n_scan) * 0.95
-        chis = [float(np.sum(fun(np.r_[zz, p0[1:]]) ** 2)) for zz in zs]
-        chi0 = float(np.sum(fun(p0) ** 2))
+        _, wk0, bs0 = unpack(p0)
+        # all scan points at once, in chunks that keep the design stack small
+        per = max(1, int(2_000_000 // max(1, model.x.size * model.n_cols)))
+        chis = np.concatenate([yy - nnls_gain_many(model.design_many(zs[i:i + per], wk0, bs0), model.w, rr)
+                               for i in range(0, zs.size, per)])
+        chi0 = chi2(p0)
         if min(chis) < chi0:
             p0[0] = zs[int(np.argmin(chis))]
     lb_a, ub_a = np.array(lb, dtype=float), np.array(ub, dtype=float)
@@ -318,7 +413,7 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
             break
         for damp in (1.0, 0.5, 0.25):
             q = np.clip(p + damp * step, lb_a, ub_a)
-            cq = float(np.sum(fun(q) ** 2))
+            cq = chi2(q)
             if cq < chi:
                 break
         else:
@@ -336,19 +431,13 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         except ValueError:
             pass
     z, wk, bs = unpack(p)
-    A = model.design(z, wk, bs)
-    try:
-        a, rn = nnls(A * sw[:, None], y, maxiter=20 * max(1, model.n_cols))
-    except RuntimeError:
-        a = np.clip(np.linalg.lstsq(A * sw[:, None], y, rcond=None)[0], 0, None)
-        rn = float(np.linalg.norm((A * sw[:, None]) @ a - y))
-    dchi2 = float(y @ y - rn**2)
+    a, dchi2 = nnls_weighted(model.design(z, wk, bs), model.w, rr)
     active_cols = np.flatnonzero(a > 0)
     z_err = formal_z_error(model, z, wk, bs, a, active_cols)
     active_lines = [int(l) for l in np.flatnonzero(model.col_of_line >= 0)
                     if a[model.col_of_line[l]] > 0]
     return CandidateFit(cls, float(z), z_err, float(wk), float(bs), a, dchi2, int(active_cols.size),
-                        model, active_lines, chi2=float(rn**2))
+                        model, active_lines, chi2=float(yy - dchi2))
 
 
 def formal_z_error(model: LineModel, z, wk, bs, a, active_cols) -> float:
