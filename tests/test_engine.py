@@ -230,3 +230,42 @@ def test_same_seed_same_answer():
     a = measure(spec, MeasureConfig(n_resamples=30, seed=4))
     b = measure(spec, MeasureConfig(n_resamples=30, seed=4))
     assert a.z_samples == b.z_samples and a.z == b.z
+
+
+@pytest.mark.parametrize("scale", [1e-300, 1e-17, 1e250])
+def test_flux_scale_does_not_change_the_answer(scale):
+    # Weighted least squares is invariant when data and uncertainties are multiplied by one
+    # constant (chi-square, S/N and equivalent widths unchanged, fluxes scale with it; common
+    # practice). 1e-300 is a legal float64 whose square underflows, so 1/sigma^2 overflows.
+    rng = np.random.default_rng(5)
+    wave, flux, sig = emission_spectrum(0.31, rng)
+    ref = measure(Spectrum(wave, flux, sig), FAST)
+    res = measure(Spectrum(wave, flux * scale, sig * scale), FAST)
+    assert res.status == "ok" and res.grade == ref.grade and res.template == ref.template
+    assert abs(res.z - ref.z) < 0.05 * ref.z_err
+    by_name = {m.name: m for m in ref.lines}
+    assert res.lines and all(m.name in by_name for m in res.lines)
+    for m in res.lines:
+        assert m.flux == pytest.approx(by_name[m.name].flux * scale, rel=1e-3)
+        assert m.ew == pytest.approx(by_name[m.name].ew, rel=1e-3)
+
+
+def test_spectrum_ivar_of_tiny_sigma_is_finite(caplog):
+    # 1/(1e-300)^2 exceeds the float64 maximum ~1.8e308 (IEEE 754): no inf may leak out
+    s = Spectrum(log_grid()[:200], np.full(200, 1e-300), np.full(200, 1e-300))
+    with caplog.at_level("WARNING"):
+        iv = s.ivar
+    assert np.isfinite(iv).all() and (iv == 0).all()
+    assert "overflows" in caplog.text
+    ok = Spectrum(log_grid()[:200], np.ones(200), np.full(200, 0.5))
+    assert np.allclose(ok.ivar, 4.0)
+
+
+@pytest.mark.parametrize("n_good", [1, 3])
+def test_a_few_usable_pixels_is_a_failure_not_a_silent_nan(n_good):
+    wave = log_grid()[:400]
+    flux = np.full(wave.size, np.nan)
+    flux[100:100 + n_good] = 1.0
+    res = measure(Spectrum(wave, flux, np.ones(wave.size)), FAST)
+    assert res.status == "failed" and res.grade == "none" and math.isnan(res.z)
+    assert "usable pixels" in res.message

@@ -161,8 +161,18 @@ class Spectrum:
     @property
     def ivar(self) -> np.ndarray:
         """Inverse variance, 0 on bad pixels."""
-        with np.errstate(divide="ignore", invalid="ignore"):
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
             iv = np.where(self.mask | ~np.isfinite(self.sigma), 0.0, 1.0 / self.sigma**2)
+        # sigma below ~1e-154 has no float64 inverse variance (1/sigma^2 overflows): such
+        # pixels cannot be weighted at this flux scale, so they get 0 (and a warning)
+        over = ~np.isfinite(iv)
+        if over.any():
+            import logging
+
+            logging.getLogger(__name__).warning(
+                "%d pixel(s) with sigma too small for a float64 inverse variance (1/sigma^2 "
+                "overflows) get ivar 0; rescale the flux (zsieve.engine.measure does)", int(over.sum()))
+            iv = np.where(over, 0.0, iv)
         return iv
 
     def replace(self, **changes) -> "Spectrum":

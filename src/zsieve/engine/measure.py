@@ -41,7 +41,7 @@ from .bootstrap import bootstrap, robust_sigma
 from .detect import detect_features
 from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
-from .prepare import C_KMS, LoglamMap, prepare, range_mask, sky_ranges
+from .prepare import C_KMS, LoglamMap, flux_scale, prepare, range_mask, sky_ranges
 from .quasar import systemic_scatter, systemic_summary
 from .refine import CandidateFit, LineModel, group_snr, line_table, refine
 
@@ -218,17 +218,25 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
                     frame=meta.frame, n_resamples=int(cfg.n_resamples), seed=cfg.seed)
     good = ~spectrum.mask
     if good.sum() < 50:
-        res.message = f"only {int(good.sum())} usable pixels"
+        res.status = "failed"
+        res.message = f"only {int(good.sum())} usable pixels (at least 50 needed)"
         res.flags = ["too-few-pixels"]
         return res
     res.wave_min = float(spectrum.wavelength[good][0])
     res.wave_max = float(spectrum.wavelength[good][-1])
     linesets = _linesets(cfg)
+    # work at a flux scale of order 1 (values of any magnitude keep a finite inverse variance);
+    # the fluxes reported are scaled back, everything else is scale-free
+    scale = flux_scale(spectrum)
+    if scale != 1.0:
+        spectrum = spectrum.replace(flux=spectrum.flux / scale, sigma=spectrum.sigma / scale)
+    res.extra["flux_scale"] = scale
     prep = prepare(spectrum, mask_sky=cfg.mask_sky, extra_masks=cfg.extra_masks,
                    sky_min_strength=cfg.sky_min_strength, continuum_kms=cfg.continuum_kms)
     ok = prep.ivar > 0
     if ok.sum() < 50:
-        res.message = "fewer than 50 usable pixels after masking"
+        res.status = "failed"
+        res.message = f"only {int(ok.sum())} usable pixels after masking (at least 50 needed)"
         res.flags = ["too-few-pixels"]
         return res
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -236,7 +244,7 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
     sky_win = range_mask(prep.wave, sky_ranges(0.3, 2.0, bands=False))
     feats = detect_features(prep.wave, prep.resid, prep.ivar, prep.continuum,
                             threshold=cfg.snr_threshold, sky=sky_win)
-    res.features = [f.to_dict() for f in feats]
+    res.features = [_unscale(f.to_dict(), scale) for f in feats]
     sig_inst = _resolution(cfg, feats, prep.dv_kms)
 
     # ---------------------------------------------------------------- proposals
@@ -346,7 +354,8 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
 
     # ---------------------------------------------------------------- lines, bound, systemic
     rows = line_table(best, prep.wave, prep.resid, prep.ivar, prep.continuum, min_snr=2.0)
-    res.lines = [LineMatch(**{k: v for k, v in r.items() if k in LineMatch.__dataclass_fields__}) for r in rows]
+    res.lines = [LineMatch(**{k: v for k, v in _unscale(dict(r), scale).items() if k in LineMatch.__dataclass_fields__})
+                 for r in rows]
     from .bound import cramer_rao_sigma_z
 
     m = best.model
@@ -393,6 +402,14 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
     _attach_xcorr(res, xc)
     res.message = f"{best.cls} at z={best.z:.5f} from {n_ind} line(s)"
     return res
+
+
+def _unscale(d: dict, scale: float) -> dict:
+    """Line/feature fields back in the file's flux units (the engine works at flux / scale)."""
+    for k in ("flux", "flux_err"):
+        if k in d:
+            d[k] = float(d[k] * scale)
+    return d
 
 
 #: Evidence below which a resample counts as "nothing found" (penalised chi-square).

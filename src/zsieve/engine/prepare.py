@@ -46,6 +46,7 @@ __all__ = [
     "sky_mask",
     "range_mask",
     "continuum_batch",
+    "flux_scale",
     "loglam_grid",
     "LoglamMap",
     "prepare",
@@ -323,6 +324,31 @@ def _scatter_sigma(flux, good, lnwave, scale_kms=8000.0):
     return out
 
 
+def flux_scale(spec) -> float:
+    """A robust flux scale of a spectrum: the median sigma of its good pixels.
+
+    Falls back to the median absolute flux when there is no usable uncertainty, and to 1 when
+    neither is a positive finite number. The engine divides flux and sigma by it, so that
+    values of any magnitude (1e-300 as well as 1e+300) keep a finite inverse variance; every
+    chi-square, S/N and equivalent width is unchanged by the division.
+
+    >>> from zsieve.spectrum import Spectrum
+    >>> s = Spectrum(np.linspace(4000.0, 5000.0, 5), np.full(5, 3e-300), np.full(5, 2e-300))
+    >>> flux_scale(s)
+    2e-300
+    """
+    good = ~np.asarray(spec.mask, dtype=bool)
+    sig = np.asarray(spec.sigma, dtype=float)[good]
+    sig = sig[np.isfinite(sig) & (sig > 0)]
+    if sig.size:
+        scale = float(np.median(sig))
+    else:
+        f = np.abs(np.asarray(spec.flux, dtype=float)[good])
+        f = f[np.isfinite(f) & (f > 0)]
+        scale = float(np.median(f)) if f.size else 1.0
+    return scale if np.isfinite(scale) and scale > 0 else 1.0
+
+
 def prepare(spec, *, mask_sky: bool = True, extra_masks=(), sky_min_strength: float = 0.2,
             continuum_kms: float = 8000.0) -> Prepared:
     """Masks and continuum of a :class:`zsieve.spectrum.Spectrum` on its native pixels."""
@@ -338,8 +364,13 @@ def prepare(spec, *, mask_sky: bool = True, extra_masks=(), sky_min_strength: fl
     sky = sky_mask(wave, sky_min_strength) if mask_sky else np.zeros(wave.size, dtype=bool)
     extra = range_mask(wave, extra_masks)
     bad = bad | sky | extra | ~np.isfinite(sigma) | ~(sigma > 0)
-    with np.errstate(divide="ignore"):
+    with np.errstate(divide="ignore", over="ignore"):
         ivar = np.where(bad, 0.0, 1.0 / sigma**2)
+    if not np.isfinite(ivar).all():  # sigma so small that 1/sigma^2 overflows float64
+        log.warning("%d pixel(s) have sigma too small for an inverse variance and are left out; "
+                    "scale the flux first (see flux_scale)", int((~np.isfinite(ivar)).sum()))
+        bad = bad | ~np.isfinite(ivar)
+        ivar = np.where(bad, 0.0, ivar)
     lnwave = np.log(wave)
     cont, use = continuum_batch(flux[None, :], ivar, lnwave, scale_kms=continuum_kms, return_use=True)
     dv = C_KMS * float(np.median(np.diff(lnwave))) if wave.size > 1 else 1.0
