@@ -33,7 +33,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .prepare import Prepared, continuum_batch
+from .prepare import Prepared, continuum_batch, continuum_operator
 from .refine import SQRT2PI, WINDOW_SIGMA, CandidateFit
 from .prepare import C_KMS
 
@@ -73,10 +73,16 @@ class BootstrapResult:
 def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty: float,
               score_min: float, keep_resid: bool = False, noise=None) -> BootstrapResult:
     """Repeat the decision on ``n`` resamples (see module docstring)."""
-    eps = resample_noise(prep, n, rng) if noise is None else noise
-    c_eps = continuum_batch(eps, prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
-    R = prep.resid[None, :] + np.where(prep.ivar > 0, eps - c_eps, 0.0)
     nf = len(fits)
+    if noise is None and not keep_resid:
+        # only the pixels the candidates' line models see are needed: draw those, and the rest
+        # of each continuum block as one Gaussian sum (same distribution, far fewer draws)
+        U, R = _resample_on(prep, fits, n, rng)
+    else:
+        eps = resample_noise(prep, n, rng) if noise is None else noise
+        c_eps = continuum_batch(eps, prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
+        R = prep.resid[None, :] + np.where(prep.ivar > 0, eps - c_eps, 0.0)
+        U = None
     score = np.full((nf, n), -np.inf)
     zfit = np.full((nf, n), np.nan)
     amps0 = None
@@ -93,7 +99,8 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
             Finv = np.linalg.inv(F)
         except np.linalg.LinAlgError:
             Finv = np.linalg.pinv(F)
-        b = R[:, m.pix] @ WJ  # (n, A+1)
+        Rm = _rows_at(R, U, m.pix)
+        b = Rm @ WJ  # (n, A+1)
         X = b @ Finv  # least-squares solutions
         dchi2 = np.einsum("ij,ij->i", X, b)
         zmax = 5.0 * max(fit.z_err if np.isfinite(fit.z_err) else 0.0, 30.0 / C_KMS * (1 + fit.z))
@@ -101,18 +108,58 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
         score[k] = dchi2 - penalty * act.size
         if k == 0:
             amps0 = (act, X[:, :-1])
+            R0 = Rm
     best = np.argmax(score, axis=0)
     top = score[best, np.arange(n)]
     choice = np.where(top >= score_min, best, -1)
     if nf and amps0 is not None:
-        zfit[0] = _newton_z(fits[0], R, zfit[0], amps0)
+        zfit[0] = _newton_z(fits[0], R0, zfit[0], amps0)
     prob = np.array([np.mean(choice == k) for k in range(nf)])
     return BootstrapResult(n, choice, prob, float(np.mean(choice < 0)), zfit[0] if nf else np.zeros(0),
                            zfit, score, R if keep_resid else None)
 
 
+def _rows_at(R, U, pix):
+    """Columns ``pix`` (native pixel indices) of resamples stored on pixels ``U`` (None = all)."""
+    return R[:, pix] if U is None else R[:, np.searchsorted(U, pix)]
+
+
+def _resample_on(prep: Prepared, fits, n: int, rng):
+    """Resampled residuals ``(U, R)`` on the union ``U`` of the fits' window pixels only.
+
+    Each resample is ``f* = f + eps`` minus the change ``c(eps)`` of the (fixed-selection,
+    linear) continuum. ``c(eps)`` needs only each block's weighted noise sum: the part from
+    pixels in ``U`` is summed from their draws, the part from the other pixels of the block is
+    one normal draw with the variance of that sum (sum of w^2 sigma^2 = sum of w, since
+    w = 1/sigma^2), so the joint distribution on ``U`` is exactly that of
+    :func:`resample_noise` + :func:`~zsieve.engine.prepare.continuum_batch`.
+    """
+    pix = [f.model.pix for f in fits if f.model.pix.size]
+    U = np.unique(np.concatenate(pix)) if pix else np.zeros(0, dtype=int)
+    block, w, sw, M = continuum_operator(prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
+    s = np.where(prep.ivar > 0, prep.sigma, 0.0)[U]
+    eps = rng.standard_normal((n, U.size)) * s[None, :]
+    nblk = sw.size
+    blk = U // block
+    wU = w[U]
+    inside = np.bincount(blk, wU, minlength=nblk)  # weight of U pixels per block
+    rest = np.sqrt(np.clip(sw - inside, 0.0, None))
+    sums = np.zeros((n, nblk))
+    if U.size:  # U is sorted, so its pixels of one block are contiguous
+        first = np.flatnonzero(np.r_[True, np.diff(blk) > 0])
+        sums[:, blk[first]] = np.add.reduceat(eps * wU[None, :], first, axis=1)
+    sums += rng.standard_normal((n, nblk)) * rest[None, :]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(sw > 0, sums / np.where(sw > 0, sw, 1.0), 0.0)
+    c_eps = mean @ M[:, U]
+    R = prep.resid[U][None, :] + np.where(prep.ivar[U] > 0, eps - c_eps, 0.0)
+    return U, R
+
+
 def _newton_z(fit: CandidateFit, R, z_n, amps):
-    """One Gauss-Newton step in z per resample, profiles at each resample's own z (vectorised)."""
+    """One Gauss-Newton step in z per resample, profiles at each resample's own z (vectorised).
+
+    ``R`` holds the resampled residuals on the fit's window pixels (``fit.model.pix``)."""
     m = fit.model
     act, a_n = amps
     a_full = np.zeros((R.shape[0], fit.amps.size))
@@ -141,7 +188,7 @@ def _newton_z(fit: CandidateFit, R, z_n, amps):
         p = coef[:, j:j + 1] * np.exp(-0.5 * u * u) / (SQRT2PI * sj)
         model[:, sl] += p
         dmod[:, sl] += p * (u / sj * base[j] + (u * u - 1.0) / (1 + z_n)[:, None])
-    r = R[:, m.pix] - model
+    r = R - model
     num = np.sum(m.w[None, :] * r * dmod, axis=1)
     den = np.sum(m.w[None, :] * dmod * dmod, axis=1)
     with np.errstate(divide="ignore", invalid="ignore"):

@@ -46,6 +46,7 @@ __all__ = [
     "sky_mask",
     "range_mask",
     "continuum_batch",
+    "continuum_operator",
     "flux_scale",
     "loglam_grid",
     "LoglamMap",
@@ -167,8 +168,7 @@ def continuum_batch(flux2d, ivar, lnwave, *, scale_kms: float = 8000.0, clip: fl
         np.append(np.arange(0, npix, block), npix))
     good0 = ivar > 0
     if use is not None and np.ndim(use) == 1 and ivar.shape[0] == n and (n == 1 or ivar.strides[0] == 0):
-        return _continuum_fixed(flux2d, ivar[0], np.asarray(use, dtype=bool) & good0[0], centre, block,
-                                nblk, lnwave)
+        return _continuum_fixed(flux2d, ivar[0], np.asarray(use, dtype=bool) & good0[0], scale_kms, lnwave)
     f0 = np.where(good0, flux2d, 0.0)
     if use is not None:
         use = np.broadcast_to(np.asarray(use, dtype=bool), flux2d.shape) & good0
@@ -198,28 +198,40 @@ def continuum_batch(flux2d, ivar, lnwave, *, scale_kms: float = 8000.0, clip: fl
     return (cont, use) if return_use else cont
 
 
-def _continuum_fixed(flux2d, ivar, use, centre, block, nblk, lnwave):
-    """Continuum of many rows with one fixed pixel selection and one ``ivar`` (a linear map).
+def continuum_operator(ivar, lnwave, *, scale_kms: float = 8000.0, use=None):
+    """The continuum of :func:`continuum_batch` with a fixed pixel selection, as a linear map.
 
-    The block means are one weighted sum per block, and the interpolation between block
-    centres is the same matrix for every row, so all rows take two matrix products; the
-    result equals the general path of :func:`continuum_batch` (no clipping) to rounding.
+    Returns ``(block, w, sw, M)``: the block length in pixels (block ``k`` holds pixels
+    ``k*block ... (k+1)*block-1``), the weights ``w`` (ivar on the selected pixels, else 0),
+    their sum ``sw`` per block, and the ``(nblk, npix)`` interpolation matrix, so that the
+    continuum of a flux row ``f`` is ``((sums of w f per block) / sw) @ M`` (0 for empty blocks).
     """
-    n, npix = flux2d.shape
+    ivar = np.asarray(ivar, dtype=float)
+    lnwave = np.asarray(lnwave, dtype=float)
+    npix = ivar.size
+    use = (ivar > 0) if use is None else (np.asarray(use, dtype=bool) & (ivar > 0))
+    dv = C_KMS * float(np.median(np.diff(lnwave))) if npix > 1 else 1.0
+    block = int(np.clip(round(scale_kms / max(dv, 1e-6)), 8, max(npix, 8)))
+    starts = np.arange(0, npix, block)
+    centre = np.add.reduceat(lnwave, starts) / np.diff(np.append(starts, npix))
     w = np.where(use, ivar, 0.0)
-    sw = np.add.reduceat(w, np.arange(0, npix, block))
+    sw = np.add.reduceat(w, starts)
     ok = sw > 0
-    # weighted block sums of every row: (n, npix) @ (npix, nblk) block indicator, done by reduceat
-    wf = np.where(use[None, :], flux2d, 0.0) * w[None, :]
-    sums = np.add.reduceat(wf, np.arange(0, npix, block), axis=1)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(ok[None, :], sums / np.where(ok, sw, 1.0)[None, :], 0.0)
-    # interpolation matrix from block values to pixels (columns: blocks), built from unit vectors
-    M = _interp_blocks(centre, np.eye(nblk), np.broadcast_to(ok, (nblk, nblk)), lnwave)  # (nblk, npix)
-    if not ok.any():
-        return np.zeros((n, npix))
-    return mean @ M
+    # built from unit vectors, so it equals the bridging of empty blocks in continuum_batch
+    M = _interp_blocks(centre, np.eye(starts.size), np.broadcast_to(ok, (starts.size, starts.size)), lnwave)
+    M[~ok] = 0.0
+    return block, w, sw, M
 
+
+def _continuum_fixed(flux2d, ivar, use, scale_kms, lnwave):
+    """Continuum of many rows with one fixed pixel selection and one ``ivar`` (two matrix
+    products; equals the general path of :func:`continuum_batch` without clipping to rounding)."""
+    block, w, sw, M = continuum_operator(ivar, lnwave, scale_kms=scale_kms, use=use)
+    npix = w.size
+    sums = np.add.reduceat(np.where(w[None, :] > 0, flux2d, 0.0) * w[None, :], np.arange(0, npix, block), axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(sw > 0, sums / np.where(sw > 0, sw, 1.0), 0.0)
+    return mean @ M
 
 def _interp_blocks(centre, value, ok, x):
     """Linear interpolation of block values (rows of ``value``) to ``x``; empty blocks bridged.
