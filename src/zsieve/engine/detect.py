@@ -11,8 +11,8 @@ of widths with FFT convolutions. Local extrema of S/N beyond the threshold becom
 Each feature is then fitted by weighted least squares with a Gaussian (sigma weights),
 giving centroid, sigma, flux, equivalent width and S/N with errors from the Jacobian:
 isolated features all at once by a batched Gauss-Newton (:func:`fit_isolated`), and features
-whose windows overlap (doublets, blends) *together*, one Gaussian each, by
-``scipy.optimize.least_squares``.
+whose windows overlap (doublets, blends) *together*, one Gaussian each, by a bounded
+Levenberg-Marquardt fit (:func:`lm_bounded`).
 
 Examples
 --------
@@ -32,10 +32,9 @@ import math
 from dataclasses import asdict, dataclass
 
 import numpy as np
-from scipy.optimize import least_squares
 from scipy.signal import fftconvolve
 
-__all__ = ["Feature", "detect_features", "matched_filter_snr"]
+__all__ = ["Feature", "detect_features", "matched_filter_snr", "lm_bounded"]
 
 log = logging.getLogger(__name__)
 
@@ -165,6 +164,67 @@ def _pack(a, mu, s, cov, i, wave, cont, n=1):
                 kind="emission" if a > 0 else "absorption")
 
 
+def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, xtol: float = 1e-6):
+    """Levenberg-Marquardt minimisation of ``|fun(p)|^2`` with box bounds (steps clipped).
+
+    Marquardt's diagonal scaling (``J^T J`` diagonal, the same as ``x_scale='jac'`` of
+    ``scipy.optimize.least_squares``) makes the damping independent of the units of each
+    parameter; a step is kept only when it lowers the chi-square. Small problems (a few to a
+    few tens of parameters) converge in a handful of iterations at a fraction of the cost of
+    the general-purpose solver. It stops when the chi-square falls by less than ``rtol`` of
+    itself, the step is below ``xtol`` of the parameters, or after ``max_nfev`` evaluations of
+    ``fun``. Returns ``(p, chi2)``.
+
+    >>> import numpy as np
+    >>> x = np.linspace(-3.0, 3.0, 61)
+    >>> y = 2.0 * np.exp(-0.5 * ((x - 0.3) / 0.8) ** 2)
+    >>> f = lambda p: p[0] * np.exp(-0.5 * ((x - p[1]) / p[2]) ** 2) - y
+    >>> def j(p):
+    ...     e = np.exp(-0.5 * ((x - p[1]) / p[2]) ** 2)
+    ...     u = (x - p[1]) / p[2]
+    ...     return np.column_stack([e, p[0] * e * u / p[2], p[0] * e * u * u / p[2]])
+    >>> p, c = lm_bounded(f, j, np.array([1.0, 0.0, 1.0]), np.array([0.0, -1.0, 0.1]), np.array([9.0, 1.0, 5.0]))
+    >>> [round(float(v), 6) for v in p]
+    [2.0, 0.3, 0.8]
+    """
+    lb = np.asarray(lb, dtype=float)
+    ub = np.asarray(ub, dtype=float)
+    p = np.clip(np.asarray(p0, dtype=float), lb, ub)
+    r = fun(p)
+    chi = float(r @ r)
+    lam = 1e-3
+    nfev = 1
+    while nfev < max_nfev:  # iterations (a handful)
+        J = jac(p)
+        g = J.T @ r
+        H = J.T @ J
+        d = np.maximum(np.diag(H), 1e-12 * max(float(np.max(np.diag(H), initial=0.0)), 1e-300))
+        improved = False
+        while nfev < max_nfev and lam < 1e12:
+            try:
+                step = np.linalg.solve(H + lam * np.diag(d), -g)
+            except np.linalg.LinAlgError:
+                lam *= 10.0
+                continue
+            q = np.clip(p + step, lb, ub)
+            rq = fun(q)
+            nfev += 1
+            cq = float(rq @ rq)
+            if np.isfinite(cq) and cq < chi:
+                improved = True
+                break
+            lam *= 4.0
+        if not improved:
+            break
+        done = chi - cq <= rtol * max(chi, 1e-300) or \
+            np.all(np.abs(q - p) <= xtol * (np.abs(p) + xtol))
+        p, r, chi = q, rq, cq
+        lam = max(lam / 3.0, 1e-12)
+        if done:
+            break
+    return p, chi
+
+
 def _fit_group(wave, resid, ivar, cont, peaks, widths_A, amps, dlam):
     """Joint weighted Gaussian fit of the peaks of one blend; returns list of Feature fields."""
     n = len(peaks)
@@ -195,13 +255,10 @@ def _fit_group(wave, resid, ivar, cont, peaks, widths_A, amps, dlam):
         e = np.exp(-0.5 * u * u)
         return np.hstack([e, a * e * u / s, a * e * u * u / s]) * sw[:, None]
 
-    try:
-        res = least_squares(fun, p0, jac=jac, bounds=(lb, ub), x_scale="jac", max_nfev=30 * n,
-                            xtol=1e-6, ftol=1e-6)
-    except ValueError:
+    p, _ = lm_bounded(fun, jac, p0, lb, ub, max_nfev=30 * n, rtol=1e-6, xtol=1e-6)
+    J = jac(p)
+    if not np.all(np.isfinite(J)):
         return []
-    p = res.x
-    J = res.jac
     try:
         cov = np.linalg.pinv(J.T @ J)
     except np.linalg.LinAlgError:

@@ -9,7 +9,7 @@ at fixed z and widths is a non-negative least-squares problem (``scipy.optimize.
 
 * :meth:`LineModel.fit_linear` — amplitudes at fixed z; its chi-square improvement over the
   continuum alone is the candidate's evidence.
-* :func:`refine` — the joint fit of all lines with one z (``scipy.optimize.least_squares`` on
+* :func:`refine` — the joint fit of all lines with one z (bounded Levenberg-Marquardt on
   z and the widths, amplitudes solved exactly inside, weights from the uncertainties); the
   formal error of z comes from the full Jacobian (z, widths and amplitudes together).
 * :func:`line_table` — each active line fitted on its own (centroid, sigma, flux, EW, S/N).
@@ -36,8 +36,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.linalg import solve_triangular
-from scipy.optimize import least_squares, nnls
+from scipy.optimize import nnls
 
+from .detect import lm_bounded
 from .prepare import C_KMS
 from .identify import LineSet
 
@@ -327,8 +328,8 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     ``z_tol`` bounds the search to ``z0 +/- z_tol`` (default: 300 km/s, 2000 km/s for quasars);
     with ``scan`` a coarse grid over that range picks the start (for proposals whose z is only
     approximate, such as correlation peaks). The fit runs a few damped Gauss-Newton steps
-    (amplitudes solved exactly at each step); with ``polish`` it is finished by
-    ``scipy.optimize.least_squares`` (trust-region reflective, bounds on z and the widths).
+    (amplitudes solved exactly at each step); with ``polish`` it is finished by a bounded
+    Levenberg-Marquardt fit (:func:`zsieve.engine.detect.lm_bounded`; bounds on z and widths).
     """
     cls = ls.cls
     if z_tol is None:
@@ -386,7 +387,6 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         ub.append(BROAD_SCALE[1])
         p0.append(1.0)
     p0 = np.clip(p0, np.array(lb) + 1e-12, np.array(ub) - 1e-12)
-    scale = [max(1e-5 * (1 + z0), z_tol / 30.0), 30.0] + ([0.2] if has_broad else [])
     # a coarse scan in z first: line fits have many local minima on the scale of a line width
     if scan:
         # steps of about 0.7 line sigma (narrow lines), 9 to 41 points
@@ -422,14 +422,10 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         p, chi = q, cq
         if converged:
             break
-    if polish:
-        try:
-            res = least_squares(fun, np.clip(p, lb_a + 1e-12, ub_a - 1e-12), jac=jac, bounds=(lb, ub),
-                                x_scale=scale, max_nfev=20, xtol=1e-8, ftol=1e-8)
-            if float(np.sum(res.fun**2)) <= chi:
-                p = res.x
-        except ValueError:
-            pass
+    if polish:  # bounded Levenberg-Marquardt on the same variable-projection problem
+        q, cq = lm_bounded(fun, jac, p, lb_a, ub_a, max_nfev=20, rtol=1e-8, xtol=1e-8)
+        if cq <= chi:
+            p = q
     z, wk, bs = unpack(p)
     a, dchi2 = nnls_weighted(model.design(z, wk, bs), model.w, rr)
     active_cols = np.flatnonzero(a > 0)
