@@ -242,7 +242,7 @@ def nnls_weighted(G, w, r):
     except np.linalg.LinAlgError:
         L = None
     if L is not None and np.all(np.isfinite(L)):
-        c = solve_triangular(L, b, lower=True)
+        c = solve_triangular(L, b, lower=True, check_finite=False)
         try:
             a, rn = nnls(L.T, c, maxiter=20 * max(1, n))
             return a, float(c @ c - rn * rn)
