@@ -51,6 +51,8 @@ log = logging.getLogger(__name__)
 
 #: Stars are searched within this velocity of zero (design: |v| < 1000 km/s).
 STAR_MAX_KMS = 1000.0
+#: Slack at both ends of the z range searched, as a velocity (a few line-centroid errors).
+EDGE_SLACK_KMS = 300.0
 
 
 @dataclass(frozen=True)
@@ -164,6 +166,18 @@ def _resolution(cfg, feats, dv_kms):
     return float(max(floor, 150.0 / 2.3548))
 
 
+def _search_range(cfg) -> tuple[float, float]:
+    """``cfg.z_min .. cfg.z_max`` widened by ``EDGE_SLACK_KMS`` at each end, so that an object
+    at the edge (a galaxy at z = 0 with the default ``z_min = 0``) is not lost to its own error.
+
+    >>> _search_range(MeasureConfig(z_min=0.0, z_max=1.0))[0] < 0
+    True
+    """
+    slack = EDGE_SLACK_KMS / C_KMS
+    lo = max(cfg.z_min - slack * (1.0 + cfg.z_min), -0.5)
+    return lo, cfg.z_max + slack * (1.0 + cfg.z_max)
+
+
 def _z_window(seed: Seed, cfg):
     if seed.cls == "star":
         return STAR_MAX_KMS / C_KMS
@@ -248,17 +262,19 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
     sig_inst = _resolution(cfg, feats, prep.dv_kms)
 
     # ---------------------------------------------------------------- proposals
-    seeds = propose(feats, linesets, cfg.z_min, cfg.z_max)
+    # the range's ends take a measurement error's slack: z = 0.0000 measured as -0.00002 is in range
+    z_lo, z_hi = _search_range(cfg)
+    seeds = propose(feats, linesets, z_lo, z_hi)
     star_lo = -STAR_MAX_KMS / C_KMS
     if "star" in linesets:
         seeds.append(Seed(0.0, "star", "prior", score=0.0))
     xc = None
     if cfg.xcorr:
-        xc = _xcorr(prep, cfg, sig_inst, (min(cfg.z_min, star_lo), cfg.z_max))
+        xc = _xcorr(prep, cfg, sig_inst, (min(z_lo, star_lo), z_hi))
     if xc is not None:
         # plausible peaks only: stars near rest, the other classes inside the z range
         xc["peaks"] = [p for p in xc["peaks"] if p.template_class in linesets and (
-            abs(p.z) <= STAR_MAX_KMS / C_KMS if p.template_class == "star" else cfg.z_min <= p.z <= cfg.z_max)]
+            abs(p.z) <= STAR_MAX_KMS / C_KMS if p.template_class == "star" else z_lo <= p.z <= z_hi)]
         for p in xc["peaks"]:
             seeds.append(Seed(float(p.z), p.template_class, "xcorr", score=0.0, r_tdr=float(p.r_tdr)))
     seeds = dedupe(seeds, tol_kms=50.0)
@@ -296,7 +312,7 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
             continue
         if s.cls == "star" and abs(fit.z) > STAR_MAX_KMS / C_KMS * 1.0001:
             continue
-        if s.cls != "star" and not (cfg.z_min - 1e-4 <= fit.z <= cfg.z_max):
+        if s.cls != "star" and not (z_lo <= fit.z <= z_hi):
             continue
         fits.append((fit, s))
     fits.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
