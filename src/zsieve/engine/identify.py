@@ -37,19 +37,15 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from ..lines.catalog import CLASS_COLUMNS
 from .prepare import C_KMS
 
 __all__ = ["LineSet", "build_linesets", "Seed", "propose", "COMPANIONS", "STRENGTH_COLUMN"]
 
 log = logging.getLogger(__name__)
 
-#: Which line-list column gives a line's typical strength in each class.
-STRENGTH_COLUMN = {
-    "emission-galaxy": "strength_emission_galaxy",
-    "absorption-galaxy": "strength_absorption_galaxy",
-    "quasar": "strength_quasar",
-    "star": "strength_star",
-}
+#: Which line-list column gives a line's typical strength in each class (the line lists' own map).
+STRENGTH_COLUMN = CLASS_COLUMNS
 
 #: Lines whose presence is expected when the key line is strong (common practice in nebular
 #: spectroscopy; names as in the line list, matched by prefix so small naming differences pass).
