@@ -1,6 +1,6 @@
 """Every real survey file in ../shared/realdata loads, with the format detected from content.
 
-Reference: /work/shared/realdata/manifest.csv and README.md (SDSS DR6/DR7 spSpec, SDSS-III
+Reference: ../shared/realdata/manifest.csv and README.md (SDSS DR6/DR7 spSpec, SDSS-III
 BOSS DR9/DR10, SDSS DR12/DR14 files incl. Legacy re-reductions and SEQUELS/eBOSS, LAMOST DR1):
 npix, wave_min_A/wave_max_A, and "each file has more than 3,600 good pixels" (README, "Checks
 done"). specutils' SDSS-III/IV spec loader is an independent reader of the same files.
