@@ -483,16 +483,14 @@ class _Lock:
 
 
 def _prepare_out_dir(out_dir: Path) -> None:
-    from .report.atomic import remove_stale_parts, write_atomic
     from .report.record import OBJECTS
 
     try:
         (out_dir / OBJECTS).mkdir(parents=True, exist_ok=True)
-        write_atomic(out_dir / _LOCK_NAME, "")
+        # create the lock file in place (never replace it: another run may hold a lock on it)
+        os.close(os.open(out_dir / _LOCK_NAME, os.O_RDWR | os.O_CREAT, 0o644))
     except OSError as exc:
         raise _unwritable(out_dir, exc) from None
-    remove_stale_parts(out_dir)
-    remove_stale_parts(out_dir / OBJECTS)
 
 
 def _existing(out_dir: Path) -> tuple[dict[str, dict], dict[str, dict]]:
@@ -605,6 +603,13 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
 
     _prepare_out_dir(out_dir)
     with _Lock(out_dir):
+        # no other run writes here while we hold the lock: whatever temporary a killed writer
+        # left is stale, however young (a run killed a second ago leaves one)
+        from .report.atomic import remove_stale_parts
+        from .report.record import OBJECTS
+
+        for folder in (out_dir, out_dir / OBJECTS):
+            remove_stale_parts(folder, older_than_s=0.0)
         try:
             write_atomic(out_dir / "run.json", json.dumps(to_jsonable({**meta, "started": _utc()}), indent=1))
         except OSError as exc:
