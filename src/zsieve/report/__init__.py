@@ -35,31 +35,22 @@ def _finite(v) -> bool:
 
 
 def _cosmology_for(z: float, z_err=None, z_samples=None, cosmology=None, frames: dict | None = None) -> dict | None:
-    """``zsieve.cosmology.describe`` at the CMB-frame z where the frames give one.
-
-    The bootstrap samples are moved to that frame by the same factor (frames compose
-    multiplicatively). Returns ``None`` (and logs why) where no description is possible.
+    """``zsieve.cosmology`` description of z in the frame the frames chose (the CMB frame where
+    the header allows), samples and error moved by the same factor. Returns ``None`` (and logs
+    why) where no description is possible.
     """
-    from ..cosmology import describe
+    from ..cosmology.measurement import describe_in_frame
 
     if not _finite(z):
         return None
-    z_use, frame = float(z), "as measured"
-    if frames and _finite(frames.get("z_cmb")):
-        z_use, frame = float(frames["z_cmb"]), "cmb"
-    samples = None
-    if z_samples is not None and len(z_samples):
-        import numpy as np
-
-        s = np.asarray([x if x is not None else np.nan for x in z_samples], dtype=float)
-        samples = (1.0 + s) * (1.0 + z_use) / (1.0 + float(z)) - 1.0
-    err = float(z_err) if _finite(z_err) else None
     try:
-        out = describe(z_use, z_err=err if samples is None else None, z_samples=samples, cosmology=cosmology)
+        out = describe_in_frame(float(z), frames, z_err=float(z_err) if _finite(z_err) else None,
+                                z_samples=z_samples if z_samples is not None and len(z_samples) else None,
+                                cosmology=cosmology)
     except Exception as exc:  # the cosmology layer refuses (e.g. z <= -1): say so, keep going
         log.debug("no cosmology for z=%r: %s", z, exc)
         return None
-    out["z_frame"] = frame
+    out["z_frame"] = out["frame"]
     return out
 
 
