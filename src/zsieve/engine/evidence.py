@@ -1,0 +1,206 @@
+"""Evidence beyond the line count: doublet shape, Ly-alpha forest, per-line consistency.
+
+Three checks the joint line fit does not make by itself (design: "one strong line alone is
+ambiguous ... use the doublet shape, neighbouring lines that should appear, the continuum
+break"):
+
+* :func:`doublet_delta_chi2` -- is a lone emission line better fitted by the resolved
+  [O II] 3727.09/3729.88 doublet (fixed separation in ln lambda, free ratio in the physical
+  range) than by one Gaussian of free width? The chi-square difference, with the uncertainty
+  array, is evidence that counts like an independent line when it is large.
+* :func:`forest_test` -- a line read as Ly-alpha at z > 2 implies the Ly-alpha forest blueward
+  of it: the mean flux over rest 1050-1180 A must be depressed relative to redward of the line
+  by the mean intergalactic transmission (Faucher-Giguere et al. 2008, ApJ 681, 831:
+  tau_eff = 0.0018 (1+z)^3.92; from memory). A forest that is *absent* where those pixels are
+  observed is evidence against the Ly-alpha reading.
+* :func:`birge_factor` -- the reduced chi-square of the per-line redshifts about their mean
+  (Birge 1932, Phys. Rev. 40, 207: the "Birge ratio"); when the lines disagree with each other
+  more than their errors allow (template mismatch, blends), the error of the mean is too small
+  by sqrt(chi2_nu).
+
+Examples
+--------
+>>> import numpy as np
+>>> wave = np.arange(8000.0, 8300.0, 0.8)
+>>> z = 1.18
+>>> lam1, lam2 = OII_DOUBLET[0] * (1 + z), OII_DOUBLET[1] * (1 + z)
+>>> s = 2.0
+>>> prof = np.exp(-0.5 * ((wave - lam1) / s) ** 2) + 1.35 * np.exp(-0.5 * ((wave - lam2) / s) ** 2)
+>>> rng = np.random.default_rng(0)
+>>> flux = 5.0 * prof + rng.normal(0.0, 1.0, wave.size)
+>>> d = doublet_delta_chi2(wave, flux, np.ones(wave.size), 0.5 * (lam1 + lam2))
+>>> d > 25
+True
+>>> round(float(forest_transmission(3.0)), 3)
+0.662
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from .prepare import C_KMS
+
+__all__ = ["OII_DOUBLET", "doublet_delta_chi2", "forest_transmission", "forest_test", "birge_factor",
+           "LYA_REST", "FOREST_REST", "FOREST_RED_REST"]
+
+#: [O II] 3727.09 / 3729.88 vacuum rest wavelengths (NIST ASD; as in linelists/galaxy_emission.ecsv).
+OII_DOUBLET = (3727.092, 3729.875)
+#: Range of the [O II] 3729/3726 flux ratio: ~1.5 in the low-density limit down to ~0.35 at high
+#: density (Osterbrock & Ferland 2006, Astrophysics of Gaseous Nebulae; from memory).
+OII_RATIO_RANGE = (0.3, 1.5)
+LYA_REST = 1215.67
+#: Rest range of the Ly-alpha forest measured (between Ly-beta and the Ly-alpha wing).
+FOREST_REST = (1050.0, 1180.0)
+#: Rest range redward of Ly-alpha used as the unabsorbed reference (clear of N V 1240 and Si II).
+FOREST_RED_REST = (1270.0, 1380.0)
+
+
+def _gauss(x, mu, s):
+    return np.exp(-0.5 * ((x - mu) / s) ** 2)
+
+
+def _best_linear_chi2(cols, r, w):
+    """Minimum chi-square over non-negative amplitudes of 1 or 2 profile columns plus a constant.
+
+    ``cols``: (M, P, K) profiles for M trial shapes; ``r``, ``w``: (P,) data and weights.
+    Returns (M,) chi-square (profiles with a negative amplitude are refitted without it).
+    """
+    M, P, K = cols.shape
+    ones = np.ones((M, P, 1))
+    A = np.concatenate([cols, ones], axis=2)  # (M, P, K+1)
+    Aw = A * w[None, :, None]
+    F = np.einsum("mpk,mpl->mkl", Aw, A)
+    b = np.einsum("mpk,p->mk", Aw, r)
+    F += 1e-12 * np.eye(K + 1)[None]
+    x = np.linalg.solve(F, b[..., None])[..., 0]
+    chi2 = float(np.sum(w * r * r)) - np.einsum("mk,mk->m", x, b)
+    bad = (x[:, :K] < 0).any(axis=1)
+    return np.where(bad, np.inf, chi2)
+
+
+def doublet_delta_chi2(wave, resid, ivar, centre, *, sigma_inst_kms: float = 60.0,
+                       pair=OII_DOUBLET, ratio_range=OII_RATIO_RANGE, n_shift: int = 41,
+                       n_width: int = 16) -> float:
+    """chi2(one Gaussian, free centre and width) - chi2(doublet ``pair``, free ratio and width).
+
+    ``resid`` is the continuum-subtracted flux, ``ivar`` its inverse variance, ``centre`` the
+    observed wavelength of the feature (the doublet's mean). Both models have a free constant.
+    The doublet keeps the members' separation fixed in ln(lambda) (one z), one width for both
+    and a ratio ``second/first`` within ``ratio_range`` (boundary values tried when the free
+    ratio falls outside). A grid over centre and width is searched for both (vectorised).
+    Returns 0 when too few pixels are usable.
+    """
+    wave = np.asarray(wave, float)
+    resid = np.asarray(resid, float)
+    ivar = np.asarray(ivar, float)
+    lnsep = math.log(pair[1] / pair[0])
+    sep = centre * lnsep
+    s_min = max(centre * sigma_inst_kms / C_KMS, 0.3 * float(np.median(np.diff(wave))))
+    s_max = max(4.0 * sep, 3.0 * s_min)
+    half = 0.5 * sep + 4.0 * s_max
+    sel = (wave > centre - half) & (wave < centre + half) & (ivar > 0)
+    if sel.sum() < 8:
+        return 0.0
+    x, r, w = wave[sel], resid[sel], ivar[sel]
+    shifts = np.linspace(-1.0, 1.0, n_shift) * max(sep, 2 * s_min)
+    widths = np.geomspace(s_min, s_max, n_width)
+    S, W = np.meshgrid(shifts, widths, indexing="ij")
+    S, W = S.ravel(), W.ravel()
+    mu = centre + S
+    # one Gaussian
+    g1 = _gauss(x[None, :], mu[:, None], W[:, None])[..., None]
+    chi_single = float(np.min(_best_linear_chi2(g1, r, w)))
+    # the doublet: members at mean -/+ half the separation (in ln lambda)
+    m1 = mu * math.exp(-0.5 * lnsep)
+    m2 = mu * math.exp(0.5 * lnsep)
+    p1 = _gauss(x[None, :], m1[:, None], W[:, None])
+    p2 = _gauss(x[None, :], m2[:, None], W[:, None])
+    free = _best_linear_chi2(np.stack([p1, p2], axis=2), r, w)
+    # the free ratio's value decides whether it is admissible; else try the two boundaries
+    best = []
+    A = np.stack([p1, p2, np.ones_like(p1)], axis=2)
+    Aw = A * w[None, :, None]
+    F = np.einsum("mpk,mpl->mkl", Aw, A) + 1e-12 * np.eye(3)[None]
+    b = np.einsum("mpk,p->mk", Aw, r)
+    a = np.linalg.solve(F, b[..., None])[..., 0]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        ratio = a[:, 1] / a[:, 0]
+    ok = (a[:, 0] > 0) & (ratio >= ratio_range[0]) & (ratio <= ratio_range[1])
+    best.append(np.where(ok, free, np.inf))
+    for q in ratio_range:
+        best.append(_best_linear_chi2((p1 + q * p2)[..., None], r, w))
+    chi_double = float(np.min(np.concatenate(best)))
+    if not (np.isfinite(chi_single) and np.isfinite(chi_double)):
+        return 0.0
+    return chi_single - chi_double
+
+
+def forest_transmission(z) -> np.ndarray | float:
+    """Mean Ly-alpha forest transmission at absorber redshift ``z``:
+    exp(-0.0018 (1+z)^3.92) (Faucher-Giguere et al. 2008, ApJ 681, 831; from memory)."""
+    return np.exp(-0.0018 * np.power(1.0 + np.asarray(z, dtype=float), 3.92))
+
+
+def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
+    """Compare the mean flux of rest 1050-1180 A with that of rest 1270-1380 A for Ly-alpha at ``z``.
+
+    Returns None where either range is not observed (fewer than ``min_pixels`` usable
+    pixels). Otherwise a dict: ``ratio`` (blue mean / red mean, inverse-variance weighted),
+    ``ratio_err``, ``expected`` (the mean transmission at the forest's absorber redshifts)
+    and ``excess`` = (ratio - allowance * expected) / error, where the allowance 1.45 is the
+    largest blue-to-red continuum rise of a plausible UV slope (f_lambda ~ lambda^-2.5 between
+    the two ranges' centres; common practice for star-forming galaxies and quasars). ``excess``
+    > 3 means the forest is absent: evidence against Ly-alpha at ``z``.
+    """
+    wave = np.asarray(wave, float)
+    a = 1.0 + z
+    out = {}
+    for key, (lo, hi) in (("blue", FOREST_REST), ("red", FOREST_RED_REST)):
+        sel = (wave > lo * a) & (wave < hi * a) & (ivar > 0)
+        if sel.sum() < min_pixels:
+            return None
+        w = ivar[sel]
+        out[key] = (float(np.sum(w * flux[sel]) / np.sum(w)), float(1.0 / math.sqrt(np.sum(w))))
+    (mb, eb), (mr, er) = out["blue"], out["red"]
+    if mr <= 3.0 * er:  # no measurable continuum redward: nothing to normalise by
+        return None
+    ratio = mb / mr
+    err = abs(ratio) * math.hypot(eb / max(abs(mb), 1e-30), er / mr) if mb != 0 else eb / mr
+    err = max(err, eb / mr)
+    zabs = np.linspace(FOREST_REST[0], FOREST_REST[1], 32) * a / LYA_REST - 1.0
+    expected = float(np.mean(forest_transmission(zabs)))
+    allowance = (0.5 * sum(FOREST_REST) / (0.5 * sum(FOREST_RED_REST))) ** -2.5
+    return dict(ratio=float(ratio), ratio_err=float(err), expected=expected,
+                excess=float((ratio - allowance * expected) / err))
+
+
+def birge_factor(z_lines, z_errs, *, quantile_sigma: float = 2.0) -> float:
+    """Factor by which to scale the error of the mean of per-line redshifts (>= 1).
+
+    sqrt(chi2_nu) of ``z_lines`` about their weighted mean (Birge ratio), applied only when
+    chi2 exceeds its expectation by ``quantile_sigma`` standard deviations (chi2 with n-1
+    degrees of freedom: mean n-1, variance 2(n-1)), so that chance fluctuations of honest
+    errors are left alone. Fewer than 3 lines: 1.
+
+    >>> birge_factor([1.0, 1.0, 1.0], [0.1, 0.1, 0.1])
+    1.0
+    >>> round(birge_factor([0.0, 1.0, 0.0, 1.0], [0.1, 0.1, 0.1, 0.1]), 2)
+    5.77
+    """
+    z = np.asarray(z_lines, float)
+    e = np.asarray(z_errs, float)
+    ok = np.isfinite(z) & np.isfinite(e) & (e > 0)
+    z, e = z[ok], e[ok]
+    n = z.size
+    if n < 3:
+        return 1.0
+    w = 1.0 / e**2
+    zbar = np.sum(w * z) / np.sum(w)
+    chi2 = float(np.sum(w * (z - zbar) ** 2))
+    dof = n - 1
+    if chi2 <= dof + quantile_sigma * math.sqrt(2.0 * dof):
+        return 1.0
+    return float(math.sqrt(chi2 / dof))
