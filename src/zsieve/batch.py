@@ -39,6 +39,7 @@ import hashlib
 import json
 import logging
 import os
+import sqlite3
 import sys
 import time
 import traceback
@@ -58,6 +59,10 @@ __all__ = [
     "common_root",
     "run_batch",
     "settings_hash",
+    "init_worker",
+    "run_task",
+    "collect_result",
+    "failure_row",
 ]
 
 log = logging.getLogger(__name__)
@@ -108,11 +113,15 @@ def _hidden(name: str) -> bool:
     return name.startswith(".")
 
 
-def discover(args: Iterable[str], *, exclude: Iterable[str] = (), root: str | None = None) -> Iterator[InputFile]:
+def discover(args: Iterable[str], *, exclude: Iterable[str] = (), root: str | None = None,
+             seen=None) -> Iterator[InputFile]:
     """Stream the files named by ``args`` (files, folders, glob patterns), each once.
 
     Folders are walked recursively in sorted order without following symbolic links to folders;
     hidden files and folders and everything under ``exclude`` (the output folder) are left out.
+    ``seen`` remembers the real paths already given (anything with ``in`` and ``add``; default a
+    set): the batch passes one kept on disk, so discovery holds no per-file state in memory
+    beyond one folder's sorted listing.
 
     Raises
     ------
@@ -122,7 +131,7 @@ def discover(args: Iterable[str], *, exclude: Iterable[str] = (), root: str | No
     args = [os.fspath(a) for a in args]
     root = root or common_root(args)
     excl = [os.path.realpath(e) for e in exclude]
-    seen: set[str] = set()
+    seen = set() if seen is None else seen
 
     def inside_excluded(real: str) -> bool:
         return any(real == e or real.startswith(e + os.sep) for e in excl)
@@ -298,8 +307,8 @@ def _provenance(ctx: _Context, item: InputFile, sha: str | None, key: str, index
 def _finish(ctx: _Context, result: FitResult, spectrum, key: str, hand: dict | None) -> dict[str, Any]:
     """Frames, cosmology, hand decision, figure and record of one result; returns its row."""
     from .report import complete_result, hand_cosmology
-    from .report.record import object_path, write_record
-    from .report.summary import row_from_record
+    from .report.record import write_record
+    from .report.summary import row_with_facts
 
     if result.status == "ok":
         result = complete_result(result, spectrum, ctx.cosmology)
@@ -312,8 +321,7 @@ def _finish(ctx: _Context, result: FitResult, spectrum, key: str, hand: dict | N
             log.warning("%s: figure not drawn (%s: %s)", result.file, type(exc).__name__, _one_line(exc))
             log.debug("figure traceback for %s", key, exc_info=True)
     rec = result.to_dict()
-    write_record(ctx.out_dir, key, rec)
-    return row_from_record(rec)
+    return row_with_facts(rec, write_record(ctx.out_dir, key, rec))
 
 
 def _draw(ctx: _Context, key: str, result: FitResult, spectrum) -> None:
@@ -326,7 +334,12 @@ def _draw(ctx: _Context, key: str, result: FitResult, spectrum) -> None:
     write_figure(png, result, spectrum, dpi=ctx.dpi, also=also)
 
 
-def _failure(ctx, item, sha, key, message, *, index=0, n=1, status="failed", transient=False) -> dict[str, Any]:
+def failure_row(ctx, item, sha, key, message, *, index=0, n=1, status="failed", transient=False) -> dict[str, Any]:
+    """Write the ``failed`` (or ``skipped``) record of one input and return its summary row.
+
+    ``transient=True`` marks a failure that is not the file's fault (a worker process died while
+    measuring it): the next run measures the file again instead of reusing the record.
+    """
     res = FitResult.failure(item.path, message, status=status)
     prov = _provenance(ctx, item, sha, key, index, n)
     if transient:
@@ -344,12 +357,12 @@ def _fit_file(ctx: _Context, item: InputFile, sha: str, hands: dict[str, dict]) 
     try:
         spectra = read_spectra(item.path, medium=ctx.medium)
     except SpectrumFileError as exc:
-        return [_failure(ctx, item, sha, base, exc.problem)]
+        return [failure_row(ctx, item, sha, base, exc.problem)]
     except Exception as exc:  # an unexpected reader problem: isolated to this file
         log.debug("reading %s failed", item.path, exc_info=True)
-        return [_failure(ctx, item, sha, base, f"{type(exc).__name__}: {_one_line(exc)}")]
+        return [failure_row(ctx, item, sha, base, f"{type(exc).__name__}: {_one_line(exc)}")]
     if not spectra:
-        return [_failure(ctx, item, sha, base, "the file holds no spectrum")]
+        return [failure_row(ctx, item, sha, base, "the file holds no spectrum")]
     n = len(spectra)
     rows = []
     for i, spec in enumerate(spectra):
@@ -358,11 +371,11 @@ def _fit_file(ctx: _Context, item: InputFile, sha: str, hands: dict[str, dict]) 
         try:
             res = measure(spec, ctx.config)
         except SpectrumFileError as exc:
-            rows.append(_failure(ctx, item, sha, key, exc.problem, index=i, n=n))
+            rows.append(failure_row(ctx, item, sha, key, exc.problem, index=i, n=n))
             continue
         except Exception as exc:
             log.debug("fit of %s failed:\n%s", key, traceback.format_exc())
-            rows.append(_failure(ctx, item, sha, key, f"fit failed: {type(exc).__name__}: {_one_line(exc)}",
+            rows.append(failure_row(ctx, item, sha, key, f"fit failed: {type(exc).__name__}: {_one_line(exc)}",
                                  index=i, n=n))
             continue
         res = res.replace(file=item.path, object_name=res.object_name or spec.meta.object_name, provenance=prov)
@@ -391,12 +404,13 @@ def _figure_only(ctx: _Context, item: InputFile, keys: list[str]) -> list[dict[s
     """Draw missing figures of reused records (the spectrum is read again, not refitted)."""
     from .io import read_spectra
     from .report.record import object_path, read_record
-    from .report.summary import row_from_record
+    from .report.summary import row_with_facts
 
     rows = []
     spectra = None
     for key in keys:
-        rec = read_record(object_path(ctx.out_dir, key, ".json"))
+        path = object_path(ctx.out_dir, key, ".json")
+        rec = read_record(path)
         if rec is None:
             continue
         res = FitResult.from_dict(rec)
@@ -408,7 +422,7 @@ def _figure_only(ctx: _Context, item: InputFile, keys: list[str]) -> list[dict[s
                 _draw(ctx, key, res, spectra[idx])
             except Exception as exc:
                 log.warning("%s: figure not drawn (%s: %s)", item.path, type(exc).__name__, _one_line(exc))
-        rows.append(row_from_record(rec))
+        rows.append(row_with_facts(rec, path))
     return rows
 
 
@@ -416,7 +430,13 @@ def _figure_only(ctx: _Context, item: InputFile, keys: list[str]) -> list[dict[s
 _CTX: _Context | None = None
 
 
-def _init_worker(ctx: _Context, level: int, pool_worker: bool = True) -> None:
+def init_worker(ctx: _Context, level: int, pool_worker: bool = True) -> None:
+    """Prepare this process (or thread) to run :func:`run_task`: the run's context and log level.
+
+    ``pool_worker=True`` (a local pool's worker process) also ignores SIGINT, so that Ctrl-C,
+    which reaches the whole process group, is handled by the parent alone. Tasks that run in a
+    thread (Dask workers, ``--jobs 1``) pass ``False``: signal handlers belong to the main thread.
+    """
     global _CTX
     _CTX = ctx
     logging.getLogger("zsieve").setLevel(level)
@@ -427,7 +447,14 @@ def _init_worker(ctx: _Context, level: int, pool_worker: bool = True) -> None:
         signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
-def _run_task(task: tuple) -> list[dict[str, Any]]:
+def run_task(task: tuple) -> list[dict[str, Any]]:
+    """Do one task of a run in a prepared worker (see :func:`init_worker`); returns its summary rows.
+
+    ``task`` is ``("fit", InputFile, sha256, hand decisions of its keys)``: read, measure, frames,
+    cosmology, figure and record of every spectrum in the file; or ``("figure", InputFile,
+    sha256, keys)``: draw the missing figures of reused records. Each row carries the record's
+    resume facts under :data:`zsieve.report.summary.FACTS_KEY` for the client's catalogue.
+    """
     kind, item, sha, extra = task
     ctx = _CTX
     assert ctx is not None, "worker not initialised"
@@ -493,29 +520,6 @@ def _prepare_out_dir(out_dir: Path) -> None:
         raise _unwritable(out_dir, exc) from None
 
 
-def _existing(out_dir: Path) -> tuple[dict[str, dict], dict[str, dict]]:
-    """Rows and resume facts of the records already in the folder."""
-    from .report.record import iter_records
-    from .report.summary import row_from_record
-
-    rows: dict[str, dict] = {}
-    facts: dict[str, dict] = {}
-    for key, rec in iter_records(out_dir):
-        prov = rec.get("provenance") or {}
-        rows[key] = row_from_record(rec)
-        facts[key] = {
-            "sha": prov.get("input_sha256"),
-            "settings": prov.get("settings_hash"),
-            "n": int(prov.get("n_spectra") or 1),
-            "status": rec.get("status"),
-            "transient": bool(prov.get("transient")),
-            "hand": rec.get("hand"),
-            "path": prov.get("path"),
-            "index": int(prov.get("index") or 0),
-        }
-    return rows, facts
-
-
 def _same_decision(a: dict | None, b: dict | None) -> bool:
     if not a and not b:
         return True
@@ -546,9 +550,6 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
     """
     from . import __version__
     from .report.atomic import write_atomic
-    from .report.index import write_index
-    from .report.record import make_key, object_path
-    from .report.summary import tally, write_summary
 
     settings = settings or BatchSettings()
     t0 = time.perf_counter()
@@ -607,118 +608,185 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
         # left is stale, however young (a run killed a second ago leaves one)
         from .report.atomic import remove_stale_parts
         from .report.record import OBJECTS
+        from .report.summary import Catalogue
 
         for folder in (out_dir, out_dir / OBJECTS):
             remove_stale_parts(folder, older_than_s=0.0)
         try:
             write_atomic(out_dir / "run.json", json.dumps(to_jsonable({**meta, "started": _utc()}), indent=1))
+            cat = Catalogue(out_dir)
         except OSError as exc:
             raise _unwritable(out_dir, exc) from None
-        rows, facts = _existing(out_dir)
-        hands: dict[str, dict] = {}
-        if settings.keep_hand:
-            from .refit.decisions import in_force, read_decisions
+        except sqlite3.Error as exc:
+            raise _unwritable(out_dir, exc) from None
+        try:
+            return _run_locked(ctx, settings, paths, root, out_dir, meta, cat, on_row, t0)
+        except sqlite3.Error as exc:  # the catalogue's disk refused (full, read-only, I/O error)
+            raise _unwritable(out_dir, exc) from None
+        finally:
+            try:
+                cat.close()
+            except sqlite3.Error as exc:
+                log.warning("catalogue not closed cleanly (%s); the next run rebuilds what it lacks", exc)
 
-            hands = in_force(read_decisions(out_dir))
 
-        summary = BatchSummary(out_dir=str(out_dir))
-        touched: set[str] = set()
-        last_checkpoint = [time.monotonic()]
+def _run_locked(ctx: _Context, settings: BatchSettings, paths: list[str], root: str, out_dir: Path, meta: dict,
+                cat, on_row, t0: float) -> BatchSummary:
+    """The run proper, with the folder locked and its catalogue open."""
+    from .report.index import write_index
+    from .report.record import file_sha256, make_key
+    from .report.summary import FACTS_KEY, write_summary
 
-        interval = [settings.checkpoint_s]
+    cat.sync()  # the records are the truth: take in what changed since the catalogue saw them
+    run_no = cat.begin_run()
+    hands: dict[str, dict] = {}
+    if settings.keep_hand:
+        from .refit.decisions import in_force, read_decisions
 
-        def checkpoint(final: bool = False):
-            t = time.monotonic()
-            write_summary(out_dir, rows.values(), meta)
-            write_index(out_dir, rows.values())
-            last_checkpoint[0] = time.monotonic()
-            # big folders: keep the checkpoints' share of the run time small (about 5% at most)
-            interval[0] = max(settings.checkpoint_s, 20.0 * (last_checkpoint[0] - t))
-            if not final:
-                log.info("checkpoint: %d rows in %s", len(rows), out_dir)
+        hands = in_force(read_decisions(out_dir))
 
-        def take(new_rows: list[dict], fitted: bool = False):
-            summary.n_fitted_now += bool(fitted)
-            for r in new_rows:
-                rows[r["key"]] = r
-                touched.add(r["key"])
-                if on_row:
-                    on_row(r)
-            if time.monotonic() - last_checkpoint[0] > interval[0]:
-                checkpoint()
+    summary = BatchSummary(out_dir=str(out_dir))
+    last_checkpoint = [time.monotonic()]
+    interval = [settings.checkpoint_s]
+    title = f"zsieve results: {out_dir.name}"
 
-        def tasks() -> Iterator[tuple]:
-            """Decide per file: reuse, skip, draw figures only, or fit (streamed)."""
-            for item in discover(paths, exclude=[str(out_dir)], root=root):
-                summary.n_files += 1
-                base = make_key(item.relpath)
-                if not item.explicit:
-                    ok, why = _is_candidate(item.path)
-                    if not ok:
-                        f = facts.get(base)
-                        if f and f["status"] == "skipped" and not settings.force and rows[base]["message"] == why:
-                            touched.add(base)
-                        else:
-                            take([_failure(ctx, item, None, base, why, status="skipped")])
-                        yield None
-                        continue
-                try:
-                    from .report.record import file_sha256
+    def checkpoint(final: bool = False):
+        t = time.monotonic()
+        cat.commit()
+        if final and cat.tables_current(meta, title):
+            log.info("summary and index are current; not rewritten")
+            return
+        write_summary(out_dir, cat.rows(), meta, presorted=True)
+        write_index(out_dir, cat, title=title)
+        cat.note_tables_written(meta, title)
+        last_checkpoint[0] = time.monotonic()
+        # big folders: keep the checkpoints' share of the run time small (about 5% at most)
+        interval[0] = max(settings.checkpoint_s, 20.0 * (last_checkpoint[0] - t))
+        if not final:
+            log.info("checkpoint: %d rows in %s", len(cat), out_dir)
 
-                    sha = file_sha256(item.path)
-                except OSError as exc:
-                    take([_failure(ctx, item, None, base, f"not readable ({exc.strerror or exc})")])
+    def take(new_rows: list[dict], fitted: bool = False):
+        summary.n_fitted_now += bool(fitted)
+        for r in new_rows:
+            facts = r.pop(FACTS_KEY, None)
+            cat.put(r, facts, src_path=os.path.abspath(r["file"]))
+            if on_row:
+                on_row(r)
+        cat.commit(every_s=2.0)
+        if time.monotonic() - last_checkpoint[0] > interval[0]:
+            checkpoint()
+
+    def tasks() -> Iterator[tuple]:
+        """Decide per file: reuse, skip, draw figures only, or fit (streamed)."""
+        for item in discover(paths, exclude=[str(out_dir)], root=root, seen=_InputSet(cat)):
+            summary.n_files += 1
+            base = make_key(item.relpath)
+            if not item.explicit:
+                ok, why = _is_candidate(item.path)
+                if not ok:
+                    f = cat.facts(base)
+                    if f and f["status"] == "skipped" and not settings.force and f["message"] == why:
+                        cat.mark_seen([base])
+                    else:
+                        take([failure_row(ctx, item, None, base, why, status="skipped")])
                     yield None
                     continue
-                f = facts.get(base)
-                if f and not settings.force and not f["transient"] and f["sha"] == sha and f["settings"] == shash:
-                    keys = [base] + [make_key(item.relpath, i) for i in range(1, f["n"])]
-                    dropping = not settings.keep_hand and any(facts.get(k, {}).get("hand") for k in keys)
-                    if all(k in facts for k in keys) and not dropping:
-                        if settings.keep_hand and any(not _same_decision(facts[k]["hand"], hands.get(k)) for k in keys):
-                            take(_update_hands(ctx, keys, hands))
-                        suffixes = (".png", ".pdf") if settings.figure_format == "pdf" else (".png",)
-                        need_fig = [k for k in keys if settings.figures and facts[k]["status"] == "ok"
-                                    and not all(object_path(out_dir, k, x).exists() for x in suffixes)]
-                        touched.update(keys)
-                        summary.n_reused += len(keys)
-                        if need_fig:
-                            yield ("figure", item, sha, need_fig)
-                        else:
-                            yield None
-                        continue
-                yield ("fit", item, sha, {k: v for k, v in hands.items() if k.split("@")[0] == base})
-
-        bar = _progress_bar(settings.progress, lambda: sum(1 for _ in discover(paths, exclude=[str(out_dir)], root=root)))
-        try:  # an OSError that reaches here is the output folder failing (full disk, quota, ...)
             try:
-                if settings.scheduler is not None:
-                    from .cluster import run_tasks
+                sha = file_sha256(item.path)
+            except OSError as exc:
+                take([failure_row(ctx, item, None, base, f"not readable ({exc.strerror or exc})")])
+                yield None
+                continue
+            f = cat.facts(base)
+            if f and not settings.force and not f["transient"] and f["sha"] == sha and f["settings"] == ctx.settings_hash:
+                keys = [base] + [make_key(item.relpath, i) for i in range(1, f["n"])]
+                fk = {base: f}
+                for k in keys[1:]:
+                    fk[k] = cat.facts(k)
+                dropping = not settings.keep_hand and any(v and v["hand"] for v in fk.values())
+                if all(fk.values()) and not dropping:
+                    if settings.keep_hand and any(not _same_decision(fk[k]["hand"], hands.get(k)) for k in keys):
+                        take(_update_hands(ctx, keys, hands))
+                    need_fig = [k for k in keys if settings.figures and fk[k]["status"] == "ok"
+                                and not (fk[k]["png"] and (fk[k]["pdf"] or settings.figure_format != "pdf"))
+                                and not _figures_exist(out_dir, k, settings.figure_format)]
+                    cat.mark_seen(keys)
+                    summary.n_reused += len(keys)
+                    if need_fig:
+                        yield ("figure", item, sha, need_fig)
+                    else:
+                        yield None
+                    continue
+            yield ("fit", item, sha, {k: v for k, v in hands.items() if k.split("@")[0] == base})
 
-                    run_tasks(ctx, settings, tasks(), take, bar)
-                elif settings.jobs <= 1:
-                    _init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel(), pool_worker=False)
-                    for task in tasks():
-                        if task is not None:
-                            take(_run_task(task), fitted=task[0] == "fit")
-                        bar.update(1)
-                else:
-                    _run_pool(ctx, settings, tasks(), take, bar)
-            except KeyboardInterrupt:
-                summary.interrupted = True
-                log.warning("interrupted: writing the summary of the records made so far")
-            finally:
-                bar.close()
-                _drop_superseded(out_dir, rows, facts, touched)
-                checkpoint(final=True)
-        except OSError as exc:
-            raise _unwritable(out_dir, exc) from None
-        summary.counts = tally(rows.values())
-        summary.rows = len(rows)
-        summary.elapsed_s = time.perf_counter() - t0
-        if summary.n_files == 0 and not summary.interrupted:
-            raise BatchError("no input files found in " + ", ".join(paths))
-        return summary
+    bar = _progress_bar(settings.progress, lambda: sum(1 for _ in discover(paths, exclude=[str(out_dir)], root=root,
+                                                                           seen=_NoSet())))
+    try:  # an OSError that reaches here is the output folder failing (full disk, quota, ...)
+        try:
+            if settings.scheduler is not None:
+                from .cluster import run_tasks
+
+                run_tasks(ctx, settings, tasks(), take, bar)
+            elif settings.jobs <= 1:
+                init_worker(ctx, logging.getLogger("zsieve").getEffectiveLevel(), pool_worker=False)
+                for task in tasks():
+                    if task is not None:
+                        take(run_task(task), fitted=task[0] == "fit")
+                    bar.update(1)
+            else:
+                _run_pool(ctx, settings, tasks(), take, bar)
+        except KeyboardInterrupt:
+            summary.interrupted = True
+            log.warning("interrupted: writing the summary of the records made so far")
+        finally:
+            bar.close()
+            _drop_superseded(out_dir, cat)
+            checkpoint(final=True)
+    except OSError as exc:
+        raise _unwritable(out_dir, exc) from None
+    summary.counts = cat.tally()
+    summary.rows = len(cat)
+    summary.elapsed_s = time.perf_counter() - t0
+    log.debug("run %d of %s done", run_no, out_dir)
+    if summary.n_files == 0 and not summary.interrupted:
+        raise BatchError("no input files found in " + ", ".join(paths))
+    return summary
+
+
+class _InputSet:
+    """The inputs a run has seen, kept in its catalogue (``in`` and ``add``, like a set)."""
+
+    def __init__(self, cat):
+        self.cat = cat
+        self._last = None
+
+    def __contains__(self, real: str) -> bool:
+        # add-and-test in one statement; ``add`` that follows a miss is then a no-op
+        new = self.cat.add_input(real)
+        self._last = real if new else None
+        return not new
+
+    def add(self, real: str) -> None:
+        if self._last != real:
+            self.cat.add_input(real)
+        self._last = None
+
+
+class _NoSet:
+    """A set that forgets: the progress bar's quick count does not dedupe (it is an estimate)."""
+
+    def __contains__(self, item) -> bool:
+        return False
+
+    def add(self, item) -> None:
+        pass
+
+
+def _figures_exist(out_dir: Path, key: str, figure_format: str) -> bool:
+    from .report.record import object_path
+
+    suffixes = (".png", ".pdf") if figure_format == "pdf" else (".png",)
+    return all(object_path(out_dir, key, x).exists() for x in suffixes)
 
 
 def _unwritable(out_dir, exc: OSError) -> BatchError:
@@ -730,7 +798,7 @@ def _update_hands(ctx: _Context, keys: list[str], hands: dict[str, dict]) -> lis
     """Apply the decisions in force to reused records (the refit session appended new ones)."""
     from .report import hand_cosmology
     from .report.record import object_path, read_record, write_record
-    from .report.summary import row_from_record
+    from .report.summary import row_with_facts
 
     out = []
     for k in keys:
@@ -741,35 +809,21 @@ def _update_hands(ctx: _Context, keys: list[str], hands: dict[str, dict]) -> lis
         if isinstance(hand, dict) and "auto" in hand and hands.get(k) and _same_decision(hand, hands[k]):
             continue
         rec["hand"] = to_jsonable(hand_cosmology(hands.get(k), ctx.cosmology)) if hands.get(k) else None
-        write_record(ctx.out_dir, k, rec)
-        out.append(row_from_record(rec))
+        out.append(row_with_facts(rec, write_record(ctx.out_dir, k, rec)))
     return out
 
 
-def _drop_superseded(out_dir: Path, rows: dict, facts: dict, touched: set[str]) -> None:
+def _drop_superseded(out_dir: Path, cat) -> None:
     """Remove records of the same input spectrum made under another key (another root)."""
     from .report.record import object_path
 
-    by_source: dict[tuple, list[str]] = {}
-    for k, f in facts.items():
-        if f.get("path"):
-            by_source.setdefault((f["path"], f["index"]), []).append(k)
-    now = {}
-    for k in touched:
-        r = rows.get(k)
-        if r is not None:
-            now[(os.path.abspath(r["file"]), r["index"])] = k
-    for src, keys in by_source.items():
-        if src not in now:
-            continue
-        for k in keys:
-            if k != now[src] and k not in touched:
-                log.info("record %s is superseded by %s (same input); removed", k, now[src])
-                for s in (".json", ".png", ".pdf"):
-                    p = object_path(out_dir, k, s)
-                    if p.exists():
-                        p.unlink()
-                rows.pop(k, None)
+    for old, new in cat.superseded():
+        log.info("record %s is superseded by %s (same input); removed", old, new)
+        for s in (".json", ".png", ".pdf"):
+            p = object_path(out_dir, old, s)
+            if p.exists():
+                p.unlink()
+        cat.drop(old)
 
 
 class _NoBar:
@@ -800,7 +854,7 @@ def _run_pool(ctx: _Context, settings: BatchSettings, tasks: Iterator, take, bar
     level = logging.getLogger("zsieve").getEffectiveLevel()
 
     def new_pool():
-        return cf.ProcessPoolExecutor(max_workers=settings.jobs, initializer=_init_worker, initargs=(ctx, level))
+        return cf.ProcessPoolExecutor(max_workers=settings.jobs, initializer=init_worker, initargs=(ctx, level))
 
     pool = new_pool()
     pending: dict[cf.Future, tuple] = {}
@@ -811,12 +865,12 @@ def _run_pool(ctx: _Context, settings: BatchSettings, tasks: Iterator, take, bar
             done, _ = cf.wait(pending, return_when=cf.FIRST_COMPLETED)
             broken = False
             for fut in done:
-                broken |= _collect(ctx, fut, pending.pop(fut), take)
+                broken |= collect_result(ctx, fut, pending.pop(fut), take)
                 bar.update(1)
             if broken:  # every file in flight shares the dead pool's fate; the next run retries them
                 for fut, task in list(pending.items()):
                     pending.pop(fut)
-                    _collect(ctx, fut, task, take)
+                    collect_result(ctx, fut, task, take)
                     bar.update(1)
                 pool.shutdown(wait=False, cancel_futures=True)
                 pool = new_pool()
@@ -826,7 +880,7 @@ def _run_pool(ctx: _Context, settings: BatchSettings, tasks: Iterator, take, bar
             if task is None:
                 bar.update(1)
                 continue
-            pending[pool.submit(_run_task, task)] = task
+            pending[pool.submit(run_task, task)] = task
             drain(limit - 1)
         drain(0)
     except KeyboardInterrupt:
@@ -836,7 +890,7 @@ def _run_pool(ctx: _Context, settings: BatchSettings, tasks: Iterator, take, bar
         pool.shutdown(wait=True, cancel_futures=True)
         for fut, task in pending.items():
             if fut.done() and not fut.cancelled():
-                _collect(ctx, fut, task, take)
+                collect_result(ctx, fut, task, take)
         raise
     except BaseException:
         pool.shutdown(wait=False, cancel_futures=True)
@@ -845,8 +899,13 @@ def _run_pool(ctx: _Context, settings: BatchSettings, tasks: Iterator, take, bar
         pool.shutdown(wait=True)
 
 
-def _collect(ctx: _Context, fut: cf.Future, task: tuple, take) -> bool:
-    """Take a finished task's rows; returns True if the pool broke (a worker died)."""
+def collect_result(ctx: _Context, fut, task: tuple, take) -> bool:
+    """Hand a finished task's rows to ``take``; returns True if the pool broke (a worker died).
+
+    ``fut`` is a finished :class:`concurrent.futures.Future` (or anything with ``result()``, such
+    as a ``distributed.Future``). A task whose worker died, or that raised, becomes a transient
+    ``failed`` record (the next run measures the file again); the batch goes on.
+    """
     from .report.record import make_key
 
     kind, item, sha, _ = task
@@ -855,11 +914,11 @@ def _collect(ctx: _Context, fut: cf.Future, task: tuple, take) -> bool:
         return False
     except cf.process.BrokenProcessPool:
         log.warning("%s: a worker process died while measuring it; marked failed (retried next run)", item.path)
-        take([_failure(ctx, item, sha, make_key(item.relpath), "worker process died while measuring this file",
+        take([failure_row(ctx, item, sha, make_key(item.relpath), "worker process died while measuring this file",
                        transient=True)])
         return True
     except Exception as exc:  # the worker itself failed (e.g. unpicklable result): isolate the file
         log.debug("task for %s failed", item.path, exc_info=True)
-        take([_failure(ctx, item, sha, make_key(item.relpath), f"{type(exc).__name__}: {_one_line(exc)}",
+        take([failure_row(ctx, item, sha, make_key(item.relpath), f"{type(exc).__name__}: {_one_line(exc)}",
                        transient=True)])
         return False

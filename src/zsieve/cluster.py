@@ -5,7 +5,7 @@ record, skip a non-spectrum, draw a missing figure, or fit) and hands each piece
 *executor* with the signature of its own process pool, ``executor(ctx, settings, tasks, take,
 bar)``. :func:`run_tasks` is that executor for Dask:
 
-* each task runs :func:`zsieve.batch._run_task` on a worker: read, measure, frames, cosmology,
+* each task runs :func:`zsieve.batch.run_task` on a worker: read, measure, frames, cosmology,
   figure, and the JSON record written **by the worker** into ``DIR/objects`` with
   :func:`zsieve.report.atomic.write_atomic` (so ``DIR`` must be on a file system every worker
   and the client share); only the small summary rows travel back;
@@ -159,8 +159,8 @@ def _work(ctx, task: tuple, level: int) -> list[dict[str, Any]]:
     """One batch task on a Dask worker (the same function the local pool runs)."""
     from . import batch
 
-    batch._init_worker(ctx, level, pool_worker=False)  # tasks run in a worker thread: no signal handlers
-    return batch._run_task(task)
+    batch.init_worker(ctx, level, pool_worker=False)  # tasks run in a worker thread: no signal handlers
+    return batch.run_task(task)
 
 
 def _threads(client) -> int:
@@ -207,10 +207,10 @@ def run_tasks(ctx, settings, tasks: Iterable[tuple | None], take: Callable[[list
         kind, item, sha, _ = task
         if fut.status == "error" and isinstance(fut.exception(), distributed.KilledWorker):
             log.warning("%s: every Dask worker that tried it died; marked failed (retried next run)", item.path)
-            take([batch._failure(ctx, item, sha, make_key(item.relpath),
-                                 "every Dask worker that measured this file died", transient=True)])
+            take([batch.failure_row(ctx, item, sha, make_key(item.relpath),
+                                    "every Dask worker that measured this file died", transient=True)])
         else:  # rows, or the batch layer's own handling of a task that raised
-            batch._collect(ctx, fut, task, take)
+            batch.collect_result(ctx, fut, task, take)
         fut.release()
         bar.update(1)
 

@@ -23,7 +23,7 @@ import logging
 import math
 import os
 from pathlib import Path
-from typing import Any, Iterable
+from typing import Any, Iterable, Iterator
 from urllib.parse import quote
 
 from .atomic import write_atomic
@@ -167,37 +167,41 @@ def _row_html(row: dict[str, Any], files: set[str]) -> str:
     )
 
 
-def render_index(rows: Iterable[dict[str, Any]], files: dict[str, set[str]], *, title: str = "zsieve results",
-                 note: str = "") -> str:
-    """The page as a string. ``files`` maps key -> existing outputs (see :func:`existing_outputs`)."""
-    rows = sorted(rows, key=lambda r: (str(r.get("file") or ""), int(r.get("index") or 0), str(r.get("key") or "")))
+def _counts(rows: Iterable[dict[str, Any]]) -> tuple[dict[str, int], dict[str, int], int]:
     counts = {g: 0 for g in _GRADES}
     nstat = {"ok": 0, "failed": 0, "skipped": 0}
+    n = 0
     for r in rows:
+        n += 1
         if r.get("status") == "ok":
             counts[r.get("grade") if r.get("grade") in _GRADES else "none"] += 1
         nstat[r.get("status") if r.get("status") in nstat else "skipped"] += 1
+    return counts, nstat, n
+
+
+def _page_parts(pairs: Iterable[tuple[dict[str, Any], set[str]]], counts: dict[str, int], nstat: dict[str, int],
+                n: int, *, title: str, note: str) -> Iterator[str]:
+    """The page in pieces: head, one piece per row (``(row, outputs)`` in display order), tail."""
     e = html.escape
-    body = "\n".join(_row_html(r, files.get(str(r.get("key") or ""), set())) for r in rows)
     when = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     grade_opts = "".join(f'<option value="{g}">{g} ({counts[g]})</option>' for g in _GRADES)
-    status_opts = "".join(f'<option value="{s}">{s} ({n})</option>' for s, n in nstat.items())
+    status_opts = "".join(f'<option value="{s}">{s} ({k})</option>' for s, k in nstat.items())
     heads = [("figure", None), ("object", "text"), ("file", "text"), ("z", "num"), ("\u03c3<sub>z</sub>", "num"),
              ("grade", "text"), ("confidence", "num"), ("class", "text"), ("status", "text"),
              ("message / flags", "text"), ("files", None)]
     head_html = "".join(
         f'<th data-type="{t}" title="click to sort">{h}</th>' if t else f"<th>{h}</th>" for h, t in heads
     )
-    return f"""<!DOCTYPE html>
+    yield f"""<!DOCTYPE html>
 <html lang="en"><head><meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
 <title>{e(title)}</title>
 <style>{_CSS}</style></head>
 <body>
 <h1>{e(title)}</h1>
-<p class="meta">{len(rows)} entries: {nstat['ok']} fitted ({', '.join(f'{counts[g]} {g}' for g in _GRADES)}),
+<p class="meta">{n} entries: {nstat['ok']} fitted ({', '.join(f'{counts[g]} {g}' for g in _GRADES)}),
 {nstat['failed']} failed, {nstat['skipped']} skipped. Written {e(when)}. {e(note)}
-Showing <span id="shown">{len(rows)}</span>.</p>
+Showing <span id="shown">{n}</span>.</p>
 <div class="controls">
 <label>grade <select id="grade-filter"><option value="">all</option>{grade_opts}</select></label>
 <label>status <select id="status-filter"><option value="">all</option>{status_opts}</select></label>
@@ -206,16 +210,53 @@ Showing <span id="shown">{len(rows)}</span>.</p>
 </div>
 <table id="objects"><thead><tr>{head_html}</tr></thead>
 <tbody>
-{body}
+"""
+    first = True
+    for row, files in pairs:
+        yield ("" if first else "\n") + _row_html(row, files)
+        first = False
+    yield f"""
 </tbody></table>
 <script>{_JS}</script>
 </body></html>
 """
 
 
+def _row_order(r: dict[str, Any]):
+    return (str(r.get("file") or ""), int(r.get("index") or 0), str(r.get("key") or ""))
+
+
+def render_index(rows: Iterable[dict[str, Any]], files: dict[str, set[str]], *, title: str = "zsieve results",
+                 note: str = "") -> str:
+    """The page as a string. ``files`` maps key -> existing outputs (see :func:`existing_outputs`)."""
+    rows = sorted(rows, key=_row_order)
+    counts, nstat, n = _counts(rows)
+    pairs = ((r, files.get(str(r.get("key") or ""), set())) for r in rows)
+    return "".join(_page_parts(pairs, counts, nstat, n, title=title, note=note))
+
+
 def write_index(out_dir: str | os.PathLike, rows: Iterable[dict[str, Any]], *, title: str | None = None,
                 note: str = "") -> str:
-    """Write ``DIR/index.html`` atomically for these rows; links only to files that exist."""
+    """Write ``DIR/index.html`` atomically for these rows; links only to files that exist.
+
+    ``rows`` is a list (or any iterable) of summary rows, or the folder's catalogue rows
+    (:class:`zsieve.report.summary.StoredRows` or a :class:`~zsieve.report.summary.Catalogue`):
+    those are streamed to the file in order, with the outputs the catalogue knows of, so the
+    page of a run of any size is written in bounded memory.
+    """
+    from .summary import open_atomic
+
     out_dir = Path(out_dir)
-    page = render_index(rows, existing_outputs(out_dir), title=title or f"zsieve results: {out_dir.name}", note=note)
-    return write_atomic(out_dir / "index.html", page)
+    title = title or f"zsieve results: {out_dir.name}"
+    path = out_dir / "index.html"
+    if hasattr(rows, "tally") and hasattr(rows, "rows") or hasattr(rows, "with_outputs"):
+        tal = rows.tally()
+        counts = {g: tal[g] for g in _GRADES}
+        nstat = {"ok": tal["fitted"], "failed": tal["failed"], "skipped": tal["skipped"]}
+        pairs = rows.with_outputs() if hasattr(rows, "with_outputs") else rows.rows(outputs=True)
+        with open_atomic(path) as fh:
+            for part in _page_parts(pairs, counts, nstat, sum(nstat.values()), title=title, note=note):
+                fh.write(part)
+        return str(path)
+    page = render_index(rows, existing_outputs(out_dir), title=title, note=note)
+    return write_atomic(path, page)
