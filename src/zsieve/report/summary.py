@@ -596,7 +596,7 @@ class Catalogue:
         cur = self.con.cursor()  # its own cursor: writes on the connection meanwhile are not expected
         cur.execute("SELECT row, png, pdf FROM objects ORDER BY sort_file, idx, key")
         while True:
-            batch = cur.fetchmany(500)
+            batch = cur.fetchmany(max(1, CHUNK_ROWS))
             if not batch:
                 break
             for text, png, pdf in batch:
