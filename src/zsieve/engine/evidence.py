@@ -13,6 +13,9 @@ break"):
   by the mean intergalactic transmission (Faucher-Giguere et al. 2008, ApJ 681, 831:
   tau_eff = 0.0018 (1+z)^3.92; from memory). A forest that is *absent* where those pixels are
   observed is evidence against the Ly-alpha reading.
+* :func:`balmer_test` -- a line read as H-beta implies H-alpha at least 2.86 times as strong
+  (case B recombination, T = 10^4 K; Osterbrock & Ferland 2006, from memory; dust only raises
+  the ratio). H-alpha missing where its pixels are observed is evidence against H-beta.
 * :func:`birge_factor` -- the reduced chi-square of the per-line redshifts about their mean
   (Birge 1932, Phys. Rev. 40, 207: the "Birge ratio"); when the lines disagree with each other
   more than their errors allow (template mismatch, blends), the error of the mean is too small
@@ -43,7 +46,7 @@ import numpy as np
 
 from .prepare import C_KMS
 
-__all__ = ["OII_DOUBLET", "doublet_delta_chi2", "forest_transmission", "forest_test", "birge_factor",
+__all__ = ["OII_DOUBLET", "fixed_line_flux", "balmer_test", "BALMER_CASE_B", "doublet_delta_chi2", "forest_transmission", "forest_test", "birge_factor",
            "LYA_REST", "FOREST_REST", "FOREST_RED_REST"]
 
 #: [O II] 3727.09 / 3729.88 vacuum rest wavelengths (NIST ASD; as in linelists/galaxy_emission.ecsv).
@@ -204,3 +207,57 @@ def birge_factor(z_lines, z_errs, *, quantile_sigma: float = 2.0) -> float:
     if chi2 <= dof + quantile_sigma * math.sqrt(2.0 * dof):
         return 1.0
     return float(math.sqrt(chi2 / dof))
+
+
+#: Case-B H-alpha / H-beta flux ratio at 10^4 K, low density (Osterbrock & Ferland 2006,
+#: Astrophysics of Gaseous Nebulae and AGN, table 4.2; from memory; common practice).
+BALMER_CASE_B = 2.86
+
+
+def fixed_line_flux(wave, resid, ivar, centre, sigma_A, *, half_width: float = 4.0):
+    """Flux (and its 1-sigma error) of a Gaussian of fixed centre and width, with a local
+    constant, by weighted linear least squares; ``(nan, nan)`` when fewer than 5 pixels are
+    usable within ``half_width`` sigmas.
+
+    >>> import numpy as np
+    >>> w = np.arange(6500.0, 6630.0, 1.0)
+    >>> f = 30.0 / (np.sqrt(2 * np.pi) * 2.0) * np.exp(-0.5 * ((w - 6564.6) / 2.0) ** 2)
+    >>> flux, err = fixed_line_flux(w, f, np.ones(w.size), 6564.6, 2.0)
+    >>> round(flux, 3)
+    30.0
+    """
+    wave = np.asarray(wave, float)
+    sel = (np.abs(wave - centre) < half_width * sigma_A) & (np.asarray(ivar) > 0)
+    if sel.sum() < 5:
+        return math.nan, math.nan
+    x = wave[sel]
+    g = _gauss(x, centre, sigma_A) / (math.sqrt(2 * math.pi) * sigma_A)  # flux density of unit flux
+    A = np.stack([g, np.ones_like(g)], axis=1)
+    w = np.asarray(ivar, float)[sel]
+    F = A.T @ (A * w[:, None])
+    try:
+        cov = np.linalg.inv(F)
+    except np.linalg.LinAlgError:
+        return math.nan, math.nan
+    a = cov @ (A.T @ (w * np.asarray(resid, float)[sel]))
+    # flux in units of resid x Angstrom
+    return float(a[0]), float(math.sqrt(cov[0, 0]))
+
+
+def balmer_test(wave, resid, ivar, z, sigma_kms, *, h_beta: float = 4862.683, h_alpha: float = 6564.614,
+                min_snr: float = 5.0) -> dict | None:
+    """Is H-alpha as strong as H-beta at ``z`` requires (>= BALMER_CASE_B times)?
+
+    Returns None when H-beta is not measured at S/N >= ``min_snr`` or H-alpha's pixels are not
+    observed. Otherwise ``deficit`` = (BALMER_CASE_B F(Hb) - F(Ha)) / its error: > 3 means
+    H-alpha is missing, evidence against the H-beta reading.
+    """
+    out = {}
+    for key, lam in (("hb", h_beta), ("ha", h_alpha)):
+        c = lam * (1.0 + z)
+        out[key] = fixed_line_flux(wave, resid, ivar, c, c * sigma_kms / C_KMS)
+    (fb, eb), (fa, ea) = out["hb"], out["ha"]
+    if not (np.isfinite(fb) and np.isfinite(fa)) or fb < min_snr * eb:
+        return None
+    err = math.hypot(ea, BALMER_CASE_B * eb)
+    return dict(flux_hb=fb, flux_ha=fa, deficit=float((BALMER_CASE_B * fb - fa) / err))

@@ -39,7 +39,7 @@ import numpy as np
 from ..result import Candidate, FitResult, LineMatch
 from .bootstrap import bootstrap, robust_sigma
 from .detect import detect_features
-from .evidence import birge_factor, doublet_delta_chi2, forest_test
+from .evidence import balmer_test, birge_factor, doublet_delta_chi2, forest_test
 from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
 from .prepare import C_KMS, LoglamMap, flux_scale, prepare, range_mask, sky_ranges
@@ -341,7 +341,7 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
         if g.ok and g.n_active and g.dchi2 - cfg.penalty * g.n_active >= f.dchi2 - cfg.penalty * f.n_active - 1e-6:
             uniq[k] = (g, s)
     uniq.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
-    uniq, rejected = _forest_veto(uniq, prep)
+    uniq, rejected = _forest_veto(uniq, prep, sig_inst)
     if rejected:
         res.extra["rejected"] = rejected
     evid = np.array([f.dchi2 - cfg.penalty * f.n_active for f, _ in uniq])
@@ -425,7 +425,9 @@ def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
     res.candidates = cands
 
     # ---------------------------------------------------------------- flags and grade
-    flags = _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid, shape)
+    peak_fit = _xcorr_peak_fit(xc, best, uniq, linesets, prep, sig_inst, cfg)
+    flags = _flags(best, rows, uniq + peak_fit, prob, p_none, xc, prep, res, cfg,
+                   np.concatenate([evid, [f.dchi2 - cfg.penalty * f.n_active for f, _ in peak_fit]]), shape)
     n_ind = cands[0].n_lines
     rival = [e for (f, _), e in zip(uniq[1:], evid[1:]) if not _same_z(f.z, best.z, 300.0)]
     margin = float(evid[0] - max(rival)) if rival else float(evid[0])
@@ -506,14 +508,17 @@ def _independent(best, rows, min_snr=4.0, off_sky_only=False, shape=None):
 
 
 def _group_snr_by_group(fit) -> dict:
-    """{group index: S/N of its amplitude in the joint fit} (cached on the fit)."""
+    """{group index: S/N of its amplitude in the joint fit}, narrow groups only (cached on the fit)."""
     got = getattr(fit, "_zs_group_snr", None)
     if got is None:
         gs = group_snr(fit)
         m = fit.model
         got = {}
+        broad = {int(m.ls.group[l]) for l in fit.active_lines if m.ls.broad[l]}
         for l in fit.active_lines:
-            got[int(m.ls.group[l])] = float(gs[m.col_of_line[l]])
+            g = int(m.ls.group[l])
+            if g not in broad:  # a broad "line" can be a continuum misfit: its own fit decides
+                got[g] = float(gs[m.col_of_line[l]])
         try:
             fit._zs_group_snr = got
         except AttributeError:
@@ -552,13 +557,24 @@ def _doublet_evidence(best, rows, prep, sig_inst) -> dict:
     return {g: float(d)}
 
 
-def _forest_veto(uniq, prep, max_excess: float = 3.0):
-    """Drop Ly-alpha readings at z > 2 whose forest is absent (:func:`forest_test` excess above
-    ``max_excess``). Returns the kept candidates and a record of the dropped ones. All kept
-    if every candidate would go."""
+def _forest_veto(uniq, prep, sig_inst, max_excess: float = 3.0):
+    """Drop readings that the lines which must come with them refute: Ly-alpha at z > 2 whose
+    forest is absent (:func:`forest_test` excess above ``max_excess``), and emission-galaxy
+    readings with H-beta but without the H-alpha that case-B recombination requires
+    (:func:`balmer_test` deficit above ``max_excess``). Returns the kept candidates and a
+    record of the dropped ones. All kept if every candidate would go."""
     keep, gone = [], []
     for f, s in uniq:
         names = [f.model.ls.names[l] for l in f.active_lines]
+        if f.cls == "emission-galaxy" and "H-beta" in names:
+            ls = f.model.ls
+            sv = float(np.hypot(sig_inst, f.width_kms))  # the model's narrow-line velocity sigma
+            hb = ls.wave[ls.names.index("H-beta")]
+            ha = ls.wave[ls.names.index("H-alpha")] if "H-alpha" in ls.names else None
+            t = balmer_test(prep.wave, prep.resid, prep.ivar, f.z, sv, h_beta=hb, h_alpha=ha) if ha else None
+            if t is not None and t["deficit"] > max_excess:
+                gone.append(dict(z=float(f.z), template=f.cls, reason="H-alpha weaker than case B allows", **t))
+                continue
         if f.z > 2.0 and "Ly-alpha" in names:
             t = forest_test(prep.wave, prep.flux, prep.ivar, f.z)
             if t is not None and t["excess"] > max_excess:
@@ -606,17 +622,42 @@ def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=
     return flags
 
 
+def _xcorr_peak_fit(xc, best, uniq, linesets, prep, sig_inst, cfg):
+    """The joint line fit at the top correlation peak when no candidate there reached the
+    shortlist (so that :func:`_xcorr_refuted` can weigh it): ``[(fit, seed)]`` or ``[]``."""
+    if xc is None or not xc["peaks"]:
+        return []
+    top = xc["peaks"][0]
+    if top.r_tdr < 6.0 or top.template_class not in linesets:
+        return []
+    window = 3000.0 if top.template_class == "quasar" else 500.0
+    if _same_z(top.z, best.z, window) or any(_same_z(f.z, top.z, window) for f, _ in uniq):
+        return []
+    s = Seed(float(top.z), top.template_class, "xcorr", score=0.0, r_tdr=float(top.r_tdr))
+    zt = STAR_MAX_KMS / C_KMS if s.cls == "star" else None
+    fit = refine(linesets[s.cls], s.z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
+                 scan=True, polish=False)
+    if not fit.ok:
+        return []
+    return [(fit, s)]
+
+
 def _xcorr_refuted(peak, best, uniq, evid, rejected=(), *, min_gap: float = 100.0,
-                   min_frac: float = 0.25) -> bool:
+                   min_frac: float = 0.1) -> bool:
     """True when the correlation's peak was refined as a candidate and the line fit there lost
     decisively (evidence below the best by ``min_gap`` and by ``min_frac`` of the best's), or
-    the candidate there was dropped for want of its Ly-alpha forest.
+    the candidate there was dropped for want of its Ly-alpha forest; and the answer leads every
+    other rival by ``min_gap`` too.
 
     The template correlation is a proposal, the joint line fit with the uncertainties is the
     test: broad lines alias (Mg II 2799 of a z ~ 1 quasar falls where Ly-alpha of z ~ 3.8 would),
     and a peak whose own line fit is far worse is no reason to doubt the answer.
     """
     if evid is None or len(evid) == 0:
+        return False
+    # the answer must also stand clear of every rival it was compared with
+    rivals = [e for (f, _), e in zip(uniq, evid) if f is not best and not _same_z(f.z, best.z, 300.0)]
+    if rivals and float(evid[0]) - max(rivals) < min_gap:
         return False
     window = 3000.0 if peak.template_class == "quasar" else 500.0
     if any(_same_z(r["z"], peak.z, window) for r in rejected):

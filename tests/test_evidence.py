@@ -1,0 +1,133 @@
+"""Evidence checks of the engine (zsieve.engine.evidence) against published physics.
+
+* [O II] 3727.09 / 3729.88 vacuum wavelengths: NIST Atomic Spectra Database (from memory);
+  the 3729/3726 ratio ranges ~0.35-1.5 with density (Osterbrock & Ferland 2006; from memory).
+* Mean Ly-alpha forest transmission exp(-0.0018 (1+z)^3.92): Faucher-Giguere et al. 2008,
+  ApJ 681, 831 (from memory); their measured tau_eff at z = 3 is about 0.36-0.40 (from memory).
+* Case-B H-alpha/H-beta = 2.86 (Osterbrock & Ferland 2006, from memory; common practice).
+* Birge ratio: chi2 of n values about their weighted mean has mean n - 1 (chi-square
+  distribution, common practice).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from zsieve.engine.evidence import (BALMER_CASE_B, balmer_test, birge_factor, doublet_delta_chi2,
+                                    forest_test, forest_transmission)
+from zsieve.engine.measure import DOUBLET_DCHI2, MeasureConfig, measure
+from zsieve.spectrum import Spectrum
+
+C_KMS = 299792.458
+OII = (3727.092, 3729.875)  # NIST ASD vacuum (from memory)
+
+
+def _grid(lo=3600.0, hi=9800.0):
+    # SDSS-like log grid, 69 km/s pixels (common practice)
+    return 10 ** np.arange(math.log10(lo), math.log10(hi), 1e-4)
+
+
+def _gauss_flux(wave, centre, sigma_A, flux):
+    return flux / (math.sqrt(2 * math.pi) * sigma_A) * np.exp(-0.5 * ((wave - centre) / sigma_A) ** 2)
+
+
+def _oii(wave, z, total, ratio=1.35, sigma_kms=80.0):
+    c1, c2 = OII[0] * (1 + z), OII[1] * (1 + z)
+    s = c1 * sigma_kms / C_KMS
+    return _gauss_flux(wave, c1, s, total / (1 + ratio)) + _gauss_flux(wave, c2, s, total * ratio / (1 + ratio))
+
+
+def test_resolved_oii_doublet_beats_one_gaussian():
+    rng = np.random.default_rng(4)
+    wave = _grid()
+    z = 1.2
+    f = _oii(wave, z, total=120.0) + rng.normal(0, 1.0, wave.size)
+    d = doublet_delta_chi2(wave, f, np.ones(wave.size), np.mean(OII) * (1 + z), sigma_inst_kms=64.0)
+    assert d > DOUBLET_DCHI2
+
+
+def test_single_gaussian_is_not_taken_for_a_doublet():
+    rng = np.random.default_rng(5)
+    wave = _grid()
+    centre = 6150.0
+    hits = 0
+    for k in range(20):
+        f = _gauss_flux(wave, centre, centre * 100.0 / C_KMS, 120.0) + rng.normal(0, 1.0, wave.size)
+        hits += doublet_delta_chi2(wave, f, np.ones(wave.size), centre, sigma_inst_kms=64.0) >= DOUBLET_DCHI2
+    assert hits == 0
+
+
+def test_forest_transmission_matches_published_tau_eff_at_z3():
+    # Faucher-Giguere et al. 2008: tau_eff(z=3) ~ 0.36-0.40 measured (from memory)
+    tau = -math.log(float(forest_transmission(3.0)))
+    assert 0.33 < tau < 0.45
+
+
+def test_forest_test_separates_absorbed_from_bare_continuum():
+    rng = np.random.default_rng(6)
+    wave = _grid()
+    z = 4.0
+    cont = (wave / 6000.0) ** -1.5  # a UV power law (f_lambda ~ lambda^-1.5)
+    trans = np.where(wave < 1215.67 * (1 + z), forest_transmission(wave / 1215.67 - 1), 1.0)
+    sig = np.full(wave.size, 0.05)
+    ivar = 1 / sig**2
+    with_forest = forest_test(wave, cont * trans + rng.normal(0, 0.05, wave.size), ivar, z)
+    bare = forest_test(wave, cont + rng.normal(0, 0.05, wave.size), ivar, z)
+    assert with_forest["excess"] < 3.0
+    assert bare["excess"] > 3.0
+    # outside the data: no verdict
+    assert forest_test(wave, cont, ivar, 1.5) is None
+
+
+def test_balmer_decrement():
+    rng = np.random.default_rng(7)
+    wave = _grid()
+    z = 0.25
+    s = 100.0 / C_KMS
+    hb = _gauss_flux(wave, 4862.683 * (1 + z), 4862.683 * (1 + z) * s, 60.0)
+    ha = _gauss_flux(wave, 6564.614 * (1 + z), 6564.614 * (1 + z) * s, 60.0 * BALMER_CASE_B)
+    ivar = np.ones(wave.size)
+    both = balmer_test(wave, hb + ha + rng.normal(0, 1, wave.size), ivar, z, 100.0)
+    alone = balmer_test(wave, hb + rng.normal(0, 1, wave.size), ivar, z, 100.0)
+    assert both["deficit"] < 3.0
+    assert alone["deficit"] > 3.0
+    assert abs(both["flux_ha"] / both["flux_hb"] - BALMER_CASE_B) < 0.5
+
+
+def test_birge_factor_leaves_honest_errors_and_catches_small_ones():
+    rng = np.random.default_rng(8)
+    e = np.full(12, 1e-4)
+    honest = [birge_factor(rng.normal(0, 1e-4, 12), e) for _ in range(200)]
+    assert np.mean(np.array(honest) == 1.0) > 0.9  # chi2 above mean + 2 sd: a few per cent
+    small = [birge_factor(rng.normal(0, 3e-4, 12), e) for _ in range(200)]
+    assert 2.4 < np.median(small) < 3.6
+
+
+def test_lone_line_without_forest_is_not_read_as_high_z_lyman_alpha():
+    # one line at 6150 A on a flat continuum: as Ly-alpha it would be at z = 4.06, where the
+    # forest (rest 1050-1180 A -> 5300-5970 A) would remove ~half the flux (Faucher-Giguere 2008)
+    rng = np.random.default_rng(9)
+    wave = _grid()
+    f = 1.0 + _gauss_flux(wave, 6150.0, 2.5, 40.0)
+    spec = Spectrum(wave, f + rng.normal(0, 0.3, wave.size), np.full(wave.size, 0.3))
+    res = measure(spec, MeasureConfig(n_resamples=20, seed=1))
+    assert not (abs(res.z - (6150.0 / 1215.67 - 1)) < 0.01)
+    assert res.grade in ("tentative", "none")
+    assert any(r["reason"] == "no Ly-alpha forest" for r in res.extra.get("rejected", []))
+
+
+def test_lone_oii_doublet_counts_as_two_lines():
+    # [O II] alone in the grid (z = 1.3: H-beta beyond 9800 A), resolved at 69 km/s pixels
+    rng = np.random.default_rng(10)
+    wave = _grid()
+    z = 1.3
+    f = 1.0 + _oii(wave, z, total=150.0, sigma_kms=70.0)
+    spec = Spectrum(wave, f + rng.normal(0, 0.5, wave.size), np.full(wave.size, 0.5))
+    res = measure(spec, MeasureConfig(n_resamples=20, seed=1))
+    assert abs(res.z - z) < 1e-3 * (1 + z)
+    assert res.extra["doublet_dchi2"] and max(res.extra["doublet_dchi2"].values()) > DOUBLET_DCHI2
+    assert res.extra["evidence"]["n_lines"] >= 2
+    assert "one-line" not in res.flags
