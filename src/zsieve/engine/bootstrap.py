@@ -108,7 +108,7 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
         score[k] = dchi2 - penalty * act.size
         if k == 0:
             amps0 = (act, X[:, :-1])
-            R0 = Rm
+            R0 = np.ascontiguousarray(Rm)
     best = np.argmax(score, axis=0)
     top = score[best, np.arange(n)]
     choice = np.where(top >= score_min, best, -1)
@@ -120,8 +120,14 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
 
 
 def _rows_at(R, U, pix):
-    """Columns ``pix`` (native pixel indices) of resamples stored on pixels ``U`` (None = all)."""
-    return R[:, pix] if U is None else R[:, np.searchsorted(U, pix)]
+    """Columns ``pix`` (native pixel indices) of resamples stored on pixels ``U`` (None = all).
+
+    ``R`` may be stored pixel-major (Fortran order, as :func:`_resample_on` returns it): then
+    the gather copies whole contiguous rows of the transpose."""
+    ix = pix if U is None else np.searchsorted(U, pix)
+    if R.flags.f_contiguous and not R.flags.c_contiguous:
+        return R.T[ix].T
+    return R[:, ix]
 
 
 def _resample_on(prep: Prepared, fits, n: int, rng):
@@ -152,8 +158,14 @@ def _resample_on(prep: Prepared, fits, n: int, rng):
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(sw > 0, sums / np.where(sw > 0, sw, 1.0), 0.0)
     c_eps = mean @ M[:, U]
-    R = prep.resid[U][None, :] + np.where(prep.ivar[U] > 0, eps - c_eps, 0.0)
-    return U, R
+    # R = resid + where(ivar > 0, eps - c_eps, 0), in place, then stored pixel-major so that
+    # each candidate's window pixels are contiguous rows (see _rows_at)
+    np.subtract(eps, c_eps, out=eps)
+    bad = ~(prep.ivar[U] > 0)
+    if bad.any():
+        eps[:, bad] = 0.0
+    eps += prep.resid[U][None, :]
+    return U, np.ascontiguousarray(eps.T).T
 
 
 def _newton_z(fit: CandidateFit, R, z_n, amps):

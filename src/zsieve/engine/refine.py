@@ -36,6 +36,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.linalg import solve_triangular
+from scipy.linalg.lapack import dposv as _posv
 from scipy.optimize import nnls
 
 from .detect import lm_bounded
@@ -80,12 +81,19 @@ class LineModel:
                  broad_scale: float = 1.0, z_slack: float = 0.0):
         self.ls = ls
         self.sigma_inst = float(sigma_inst_kms)
-        obs = ls.wave * (1 + z) * (1 + ls.offset_kms / C_KMS)
+        # per-line constants reused by every evaluation (the LineSet's are computed properties)
+        self._base = ls.wave * (1 + ls.offset_kms / C_KMS)  # centre at z = 0
+        self._broad = ls.broad
+        self._any_broad = bool(self._broad.any())
+        self._bw = ls.width_kms / 2.3548
+        self._sv_key = None
+        obs = self._base * (1 + z)
         sv = self._sigma_v(width_kms, broad_scale)
         half = obs * (WINDOW_SIGMA * sv / C_KMS + z_slack / (1 + z))
         lo = np.searchsorted(wave, obs - half)
         hi = np.searchsorted(wave, obs + half)
-        good_cs = np.concatenate([[0], np.cumsum(ivar > 0)])
+        good_cs = np.zeros(wave.size + 1, dtype=np.int64)
+        np.cumsum(ivar > 0, out=good_cs[1:])
         cover = good_cs[hi] - good_cs[lo]
         # a line is usable when most of its core is on good pixels
         core_lo = np.searchsorted(wave, obs - 1.5 * obs * sv / C_KMS)
@@ -94,20 +102,18 @@ class LineModel:
         core_good = good_cs[core_hi] - good_cs[core_lo]
         self.present = (cover >= 3) & (core_good >= np.maximum(2, 0.5 * core_n))
         if self.present.any():
-            sel = np.zeros(wave.size + 1, dtype=int)
-            np.add.at(sel, lo[self.present], 1)
-            np.add.at(sel, hi[self.present], -1)
+            n1 = wave.size + 1
+            sel = (np.bincount(lo[self.present], minlength=n1) - np.bincount(hi[self.present], minlength=n1))
             pix = np.flatnonzero((np.cumsum(sel)[:-1] > 0) & (ivar > 0))
         else:
             pix = np.zeros(0, dtype=int)
         self.pix = pix
         self.x = wave[pix]
         self.w = ivar[pix]
-        groups = np.unique(ls.group[self.present])
+        groups, inv = np.unique(ls.group[self.present], return_inverse=True)
         self.groups = groups  # model columns = these groups
         self.col_of_line = np.full(ls.wave.size, -1)
-        for k, g in enumerate(groups):
-            self.col_of_line[(ls.group == g) & self.present] = k
+        self.col_of_line[self.present] = inv
         self._use = np.flatnonzero(self.col_of_line >= 0)
         onehot = np.zeros((self._use.size, groups.size))
         onehot[np.arange(self._use.size), self.col_of_line[self._use]] = 1.0
@@ -123,21 +129,32 @@ class LineModel:
         start = np.concatenate([[0], np.cumsum(nwin)[:-1]]).astype(int)
         self._epix = self._lo[self._eline] + (np.arange(self._eline.size) - start[self._eline])
         self._ex = self.x[self._epix]
-        self._eflat = self._epix * max(groups.size, 1) + self.col_of_line[self._use][self._eline]
+        self._ecol = self.col_of_line[self._use][self._eline]
+        self._eflat = self._epix * max(groups.size, 1) + self._ecol
+        self._ew = self.w[self._epix]
+        self._pairs = None
+        self._prof = None
 
     @property
     def n_cols(self) -> int:
         return int(self.groups.size)
 
     def _sigma_v(self, width_kms, broad_scale):
-        ls = self.ls
+        """Velocity sigma of every line (km/s) at these widths (read-only; the last one is kept)."""
+        key = (float(width_kms), float(broad_scale))
+        if key == self._sv_key:
+            return self._sv
         narrow = math.hypot(self.sigma_inst, width_kms)
-        broad = np.hypot(self.sigma_inst, broad_scale * ls.width_kms / 2.3548)
-        return np.where(ls.broad, broad, narrow)
+        if self._any_broad:
+            sv = np.where(self._broad, np.hypot(self.sigma_inst, broad_scale * self._bw), narrow)
+        else:
+            sv = np.full(self._base.size, narrow)
+        sv.flags.writeable = False
+        self._sv_key, self._sv = key, sv
+        return sv
 
     def centres(self, z):
-        ls = self.ls
-        return ls.wave * (1 + z) * (1 + ls.offset_kms / C_KMS)
+        return self._base * (1 + z)
 
     def design(self, z, width_kms, broad_scale=1.0, x=None, deriv=False):
         """Columns (npix_window, n_cols) of unit-flux profiles (sign applied); optionally d/dz."""
@@ -196,14 +213,19 @@ class LineModel:
             return np.zeros(n), np.zeros(n), np.zeros(n)
         use, e, ls = self._use, self._eline, self.ls
         mu = self.centres(z)[use]
+        ae = np.asarray(amps, dtype=float)[self.col_of_line[use]]
         sv = self._sigma_v(width_kms, broad_scale)[use]
         s = mu * sv / C_KMS
-        u = (self._ex - mu[e]) / s[e]
-        ae = np.asarray(amps, dtype=float)[self.col_of_line[use]]
-        p = np.exp(-0.5 * u * u) * (ae * self._coef / (SQRT2PI * s))[e]
+        hit = self._prof
+        if hit is not None and hit[0] == (float(z), float(width_kms), float(broad_scale)):
+            _, p, u = hit  # the profiles of the last solve at this point
+            p = p * ae[e]
+        else:
+            u = (self._ex - mu[e]) / s[e]
+            p = np.exp(-0.5 * u * u) * (ae * self._coef / (SQRT2PI * s))[e]
         dz = p * (u / s[e] * (mu / (1 + z))[e] + (u * u - 1.0) / (1 + z))
         dlns = (u * u - 1.0) * p
-        broad = ls.broad[use]
+        broad = self._broad[use]
         dn = np.where(broad, 0.0, width_kms / np.maximum(sv * sv, 1e-12))
         bw = ls.width_kms[use] / 2.3548
         db = np.where(broad, broad_scale * bw * bw / np.maximum(sv * sv, 1e-12), 0.0)
@@ -236,11 +258,123 @@ class LineModel:
         dB = np.bincount(f, dlns * db[e], minlength=size).reshape(self.x.size, self.n_cols)
         return dW, dB
 
+    # ---- the normal equations straight from the (line, pixel) entries
+    # The columns are sparse (each line covers only its own window), so G^T W G and G^T W r
+    # are sums over the pairs of entries that share a pixel instead of dense products.
+    def _entry_profiles(self, zs, width_kms, broad_scale):
+        """Unit-flux profile values (sign and ratio applied) of the entries: ``(len(zs), E)``
+        (1-D for a scalar z); the same numbers :meth:`design` scatters into its columns."""
+        use, e = self._use, self._eline
+        sv = self._sigma_v(width_kms, broad_scale)[use] / C_KMS
+        base = self._base[use]
+        scalar = np.ndim(zs) == 0
+        zs = np.asarray(zs, dtype=float)
+        mu = (1 + zs)[..., None] * base
+        s = mu * sv
+        u = (self._ex - mu[..., e]) / s[..., e]
+        p = np.exp(-0.5 * u * u) * (self._coef / (SQRT2PI * s))[..., e]
+        if scalar:  # kept for model_derivs at the same point (the Jacobian follows a solve)
+            self._prof = ((float(zs), float(width_kms), float(broad_scale)), p, u)
+        return p
+
+    def _pair_index(self):
+        """Entry pairs on a common pixel: (first, second, flat (col, col) index, weight)."""
+        if self._pairs is None:
+            order = np.argsort(self._epix, kind="stable")
+            pe = self._epix[order]
+            start = np.flatnonzero(np.r_[True, pe[1:] != pe[:-1]])
+            cnt = np.diff(np.r_[start, pe.size])
+            # each entry pairs with every entry of its pixel (itself included)
+            gcnt = np.repeat(cnt, cnt)
+            gstart = np.repeat(start, cnt)
+            i1 = np.repeat(order, gcnt)
+            off = np.arange(i1.size) - np.repeat(np.cumsum(gcnt) - gcnt, gcnt)
+            i2 = order[np.repeat(gstart, gcnt) + off]
+            k = max(self.n_cols, 1)
+            self._pairs = (i1, i2, self._ecol[i1] * k + self._ecol[i2], self._ew[i1])
+        return self._pairs
+
+    def normal_equations(self, p, rr):
+        """``(G^T W G, G^T W r)`` from entry profiles ``p`` (``(E,)`` or ``(nz, E)``) and the
+        residual ``rr`` on the window pixels; stacked ``(nz, k, k), (nz, k)`` for 2-D ``p``."""
+        k = self.n_cols
+        i1, i2, flat, wp = self._pair_index()
+        re = self._ew * rr[self._epix]
+        if p.ndim == 1:
+            F = np.bincount(flat, wp * p[i1] * p[i2], minlength=k * k).reshape(k, k)
+            b = np.bincount(self._ecol, re * p, minlength=k)
+            return F, b
+        nz = p.shape[0]
+        rows = (np.arange(nz) * (k * k))[:, None]
+        F = np.bincount((rows + flat).ravel(), (wp * p[:, i1] * p[:, i2]).ravel(),
+                        minlength=nz * k * k).reshape(nz, k, k)
+        b = np.bincount(((np.arange(nz) * k)[:, None] + self._ecol).ravel(), (re * p).ravel(),
+                        minlength=nz * k).reshape(nz, k)
+        return F, b
+
+    def model_vector(self, p, amps):
+        """``design(...) @ amps`` on the window pixels from entry profiles ``p``."""
+        return np.bincount(self._epix, p * np.asarray(amps, dtype=float)[self._ecol], minlength=self.x.size)
+
+    def fit_at(self, rr, z, width_kms, broad_scale=1.0, start=None):
+        """Amplitudes at fixed (z, widths) for the window residual ``rr``: ``(amps, delta_chi2,
+        model)`` with the model on the window pixels; ``start`` = a guess of the active columns."""
+        p = self._entry_profiles(z, width_kms, broad_scale)
+        F, b = self.normal_equations(p, rr)
+        a, gain = nnls_normal(F, b, start=start)
+        return a, gain, self.model_vector(p, a)
+
+    def scan_gain(self, rr, zs, width_kms, broad_scale=1.0):
+        """``delta_chi2`` of the amplitude fit at each z of ``zs`` (the batched z scan)."""
+        zs = np.asarray(zs, dtype=float)
+        if self.n_cols == 0 or self._eline.size == 0:
+            return np.zeros(zs.size)
+        per = max(1, int(400_000 // max(1, self._pair_index()[0].size)))
+        out = []
+        for i in range(0, zs.size, per):  # chunks that keep the pair stack small
+            F, b = self.normal_equations(self._entry_profiles(zs[i:i + per], width_kms, broad_scale), rr)
+            out.append(nnls_gain_normal(F, b))
+        return np.concatenate(out)
+
+    def scan_best(self, rr, zs, width_kms, broad_scale=1.0):
+        """``(index, delta_chi2)`` of the z in ``zs`` with the largest :meth:`scan_gain` (the
+        first of equals), found without solving every constrained fit: the unconstrained gain
+        bounds the non-negative one from above, so a z whose bound is below the best exact
+        gain cannot win and is skipped."""
+        zs = np.asarray(zs, dtype=float)
+        if self.n_cols == 0 or self._eline.size == 0:
+            return 0, 0.0
+        per = max(1, int(400_000 // max(1, self._pair_index()[0].size)))
+        Fs, bs = [], []
+        for i in range(0, zs.size, per):  # chunks that keep the pair stack small
+            F, b = self.normal_equations(self._entry_profiles(zs[i:i + per], width_kms, broad_scale), rr)
+            Fs.append(F)
+            bs.append(b)
+        F, b = np.concatenate(Fs), np.concatenate(bs)
+        try:
+            a = np.linalg.solve(_ridged(F), b[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            g = nnls_gain_normal(F, b)
+            i = int(np.argmax(g))
+            return i, float(g[i])
+        upper = np.einsum("ij,ij->i", a, b)
+        exact = np.all(a >= 0, axis=1) & np.isfinite(upper)
+        gain = np.where(exact, upper, -np.inf)
+        for i in np.argsort(-np.where(exact, -np.inf, upper), kind="stable"):  # constrained, best bound first
+            if exact[i] or not upper[i] >= gain.max():
+                break
+            gain[i] = nnls_normal(F[i], b[i], start=a[i] > 0)[1]
+        i = int(np.argmax(gain))
+        return i, float(gain[i])
+
     def fit_linear(self, r, z, width_kms, broad_scale=1.0):
         """Non-negative amplitudes at fixed z and widths; returns (amps, delta_chi2)."""
         if self.n_cols == 0 or self.pix.size == 0:
             return np.zeros(0), 0.0
-        return nnls_weighted(self.design(z, width_kms, broad_scale), self.w, r[self.pix])
+        # a one-off fit: the dense product is cheaper than building the pair index
+        G = self.design(z, width_kms, broad_scale)
+        Gw = G * self.w[:, None]
+        return nnls_normal(G.T @ Gw, Gw.T @ r[self.pix])
 
 
 def nnls_weighted(G, w, r):
@@ -283,6 +417,140 @@ def nnls_weighted(G, w, r):
         rn = float(np.linalg.norm(A @ a - y))
     return a, float(y @ y - rn * rn)
 
+
+
+def _ridged(F):
+    """``F`` plus a ridge of 1e-12 of its mean diagonal (a copy; stacks of matrices too)."""
+    n = F.shape[-1]
+    if F.ndim == 2:
+        Fr = np.array(F, dtype=float)
+        Fr.ravel()[::n + 1] += 1e-12 * max(float(np.trace(F)) / max(n, 1), 1e-300)
+        return Fr
+    ridge = 1e-12 * np.maximum(np.trace(F, axis1=-2, axis2=-1) / max(n, 1), 1e-300)
+    return F + ridge[..., None, None] * np.eye(n)
+
+
+def _spd_solve(A, y):
+    """Solve ``A x = y`` for symmetric positive-definite ``A`` (LAPACK posv); None if not SPD."""
+    _, x, info = _posv(A, y, lower=1)
+    return x if info == 0 else None
+
+
+def nnls_normal(F, b, start=None, maxiter=None):
+    """Non-negative least squares on its normal equations: ``a >= 0`` minimising
+    ``a^T F a - 2 b^T a`` (``F = G^T W G``, ``b = G^T W r``); returns ``(a, delta_chi2)`` with
+    ``delta_chi2 = 2 b^T a - a^T F a``, the chi-square improvement of :func:`nnls_weighted`.
+
+    The active-set method of Lawson & Hanson (1974, *Solving Least Squares Problems*, ch. 23)
+    run on the ``k x k`` system. ``start`` (bool mask) is a guess of the active columns: when
+    it is right (the KKT conditions hold) one small solve finishes, which is the common case
+    inside an iterative fit. The method stops only at a point satisfying the KKT conditions,
+    and the solution is unique for positive-definite ``F``, so the start changes only the
+    work. A ridge of 1e-12 of the mean diagonal is added, as in :func:`nnls_weighted`.
+
+    >>> from scipy.optimize import nnls
+    >>> G = np.array([[1.0, 0.0, 2.0], [1.0, 1.0, 0.0], [0.0, 1.0, 1.0], [2.0, 0.5, 0.0]])
+    >>> r = np.array([1.0, 0.0, -1.0, 2.0])
+    >>> a, d = nnls_normal(G.T @ G, G.T @ r)
+    >>> bool(np.allclose(a, nnls(G, r)[0]))
+    True
+    """
+    F = np.asarray(F, dtype=float)
+    b = np.asarray(b, dtype=float)
+    n = b.size
+    if n == 0:
+        return np.zeros(0), 0.0
+    Fr = _ridged(F)
+    tol = 1e-13 * max(float(np.max(np.abs(b))), 1e-300) * n
+    a = np.zeros(n)
+    if start is None:  # guess: the positive part of the unconstrained solution
+        s = _spd_solve(Fr, b)
+        if s is None:
+            return _nnls_normal_fallback(F, b)
+        if np.all(s > 0):
+            return s, float(2.0 * (b @ s) - s @ (Fr @ s))
+        idx = np.flatnonzero(s > 0)
+    else:
+        idx = np.flatnonzero(start)
+    if idx.size:
+        s = _spd_solve(Fr[idx[:, None], idx], b[idx])
+        if s is not None and np.all(s > 0):
+            a[idx] = s
+        else:
+            idx = idx[:0]
+    P = np.zeros(n, dtype=bool)
+    P[idx] = True
+    maxiter = 3 * n + 10 if maxiter is None else maxiter
+    it = 0
+    while it < maxiter:  # outer loop of Lawson-Hanson (a few passes: columns added one by one)
+        g = b - Fr @ a  # minus half the gradient
+        g[P] = -np.inf
+        j = int(np.argmax(g))
+        if g[j] <= tol:  # KKT: no column outside the passive set would lower the chi-square
+            break
+        P[j] = True
+        while it < maxiter:  # inner loop: drop columns that would turn negative
+            it += 1
+            idx = np.flatnonzero(P)
+            sP = _spd_solve(Fr[idx[:, None], idx], b[idx])
+            if sP is None:
+                return _nnls_normal_fallback(F, b)
+            if np.all(sP > 0):
+                a[:] = 0.0
+                a[idx] = sP
+                break
+            neg = sP <= 0
+            aP = a[idx]
+            ratio = np.full(idx.size, np.inf)
+            ratio[neg] = aP[neg] / (aP[neg] - sP[neg])
+            alpha = float(ratio.min())
+            newP = aP + alpha * (sP - aP)
+            a[:] = 0.0
+            a[idx] = newP
+            # the column(s) that reach zero leave the passive set
+            P[idx[(newP <= 0) | (ratio <= alpha * (1 + 1e-12))]] = False
+            a[~P] = 0.0
+            if not P.any():
+                break
+    else:
+        return _nnls_normal_fallback(F, b)
+    return a, float(2.0 * (b @ a) - a @ (Fr @ a))
+
+
+def _nnls_normal_fallback(F, b):
+    """The reduced NNLS of :func:`nnls_weighted` via scipy (Cholesky factor of ``F``)."""
+    n = b.size
+    try:
+        L = np.linalg.cholesky(_ridged(F))
+        c = solve_triangular(L, b, lower=True, check_finite=False)
+        a, rn = nnls(L.T, c, maxiter=20 * max(1, n))
+        return a, float(c @ c - rn * rn)
+    except (np.linalg.LinAlgError, RuntimeError, ValueError):
+        a = np.clip(np.linalg.lstsq(F, b, rcond=None)[0], 0, None)
+        return a, float(2.0 * (b @ a) - a @ (F @ a))
+
+
+def nnls_gain_normal(F, b) -> np.ndarray:
+    """``delta_chi2`` of :func:`nnls_normal` for stacks ``F (nz, k, k)``, ``b (nz, k)``: the
+    unconstrained solutions of all at once, the active-set method only where one is negative.
+
+    >>> F = np.array([[[2.0, 1.0], [1.0, 2.0]], [[1.0, 0.0], [0.0, 1.0]]])
+    >>> b = np.array([[1.0, 1.0], [1.0, -1.0]])
+    >>> [round(float(v), 6) for v in nnls_gain_normal(F, b)]
+    [0.666667, 1.0]
+    """
+    nz, k = b.shape
+    if k == 0 or nz == 0:
+        return np.zeros(nz)
+    Fr = _ridged(F)
+    try:
+        a = np.linalg.solve(Fr, b[:, :, None])[:, :, 0]
+    except np.linalg.LinAlgError:
+        return np.array([nnls_normal(F[i], b[i])[1] for i in range(nz)])
+    gain = np.einsum("ij,ij->i", a, b)
+    for i in np.flatnonzero((a < 0).any(axis=1) | ~np.isfinite(gain)):  # constrained ones
+        gain[i] = nnls_normal(F[i], b[i], start=a[i] > 0)[1]
+    return gain
 
 
 def nnls_gain_many(Gs, w, r) -> np.ndarray:
@@ -362,9 +630,9 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         z_tol = (2000.0 if cls == "quasar" else 300.0) / C_KMS * (1 + z0)
     wlo, whi = WIDTH_LIMITS_KMS[cls]
     w0 = _default_width(cls) if width0 is None else float(np.clip(width0, wlo, whi))
-    has_broad = bool(ls.broad.any())
     model = LineModel(ls, wave, ivar, sigma_inst_kms, z0, max(w0, 0.5 * whi),
-                      broad_scale=BROAD_SCALE[1] if has_broad else 1.0, z_slack=z_tol)
+                      broad_scale=BROAD_SCALE[1] if bool(ls.broad.any()) else 1.0, z_slack=z_tol)
+    has_broad = model._any_broad
     if model.n_cols == 0:
         return CandidateFit(cls, z0, math.inf, w0, 1.0, np.zeros(0), 0.0, 0, model, ok=False)
     sw = np.sqrt(model.w)
@@ -380,15 +648,16 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         return p[0], p[1], (p[2] if has_broad else 1.0)
 
     cache = {}
+    active = [None]  # the last active columns: the next NNLS starts from them
 
     def solve(p):
         key = tuple(p)
         hit = cache.get(key)
         if hit is None:
             z, wk, bs = unpack(p)
-            G = model.design(z, wk, bs)
-            a, gain = nnls_weighted(G, model.w, rr)
-            hit = ((G @ a) * sw - y, a, gain)
+            a, gain, mod = model.fit_at(rr, z, wk, bs, start=active[0])
+            active[0] = a > 0
+            hit = (mod * sw - y, a, gain)
             cache.clear()
             cache[key] = hit
         return hit
@@ -419,13 +688,11 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         n_scan = int(np.clip(2 * z_tol / (1 + z0) * C_KMS / (0.7 * sv_min), 9, 41))
         zs = z0 + np.linspace(-z_tol, z_tol, n_scan) * 0.95
         _, wk0, bs0 = unpack(p0)
-        # all scan points at once, in chunks that keep the design stack small
-        per = max(1, int(2_000_000 // max(1, model.x.size * model.n_cols)))
-        chis = np.concatenate([yy - nnls_gain_many(model.design_many(zs[i:i + per], wk0, bs0), model.w, rr)
-                               for i in range(0, zs.size, per)])
+        # all scan points at once (normal equations from the sparse line windows)
+        i_best, g_best = model.scan_best(rr, zs, wk0, bs0)
         chi0 = chi2(p0)
-        if min(chis) < chi0:
-            p0[0] = zs[int(np.argmin(chis))]
+        if yy - g_best < chi0:
+            p0[0] = zs[i_best]
     lb_a, ub_a = np.array(lb, dtype=float), np.array(ub, dtype=float)
     p = np.array(p0, dtype=float)
     chi = float(np.sum(fun(p) ** 2))
@@ -452,7 +719,7 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         if cq <= chi:
             p = q
     z, wk, bs = unpack(p)
-    a, dchi2 = nnls_weighted(model.design(z, wk, bs), model.w, rr)
+    a, dchi2 = solve(p)[1:]
     active_cols = np.flatnonzero(a > 0)
     z_err = formal_z_error(model, z, wk, bs, a, active_cols)
     active_lines = [int(l) for l in np.flatnonzero(model.col_of_line >= 0)
@@ -470,7 +737,7 @@ def formal_z_error(model: LineModel, z, wk, bs, a, active_cols) -> float:
     dW, dB = model.design_dwidth(z, wk, bs)
     if wk > 1.0:
         cols.append((dW @ a)[:, None])
-    if model.ls.broad.any():
+    if model._any_broad:
         cols.append((dB @ a)[:, None])
     J = np.hstack(cols)
     F = J.T @ (J * model.w[:, None])
