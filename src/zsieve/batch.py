@@ -19,14 +19,28 @@ described in :mod:`zsieve.report.record`:
 * **Resume**: a record is reused when the SHA-256 of its input file and the hash of the
   settings (engine configuration, medium option, cosmology, line lists, tool version) are
   unchanged; ``force=True`` refits. A missing figure is drawn from the stored record without
-  refitting. The summary and index are rewritten from the records every
-  ``checkpoint_s`` seconds, at the end, and on interruption.
+  refitting. Every input is checksummed on every run; the records themselves are not read
+  again: their facts (checksum, settings hash, spectrum count, status, hand decision) are
+  looked up per file in the folder's catalogue.
+* **Flat memory**: the client keeps no per-object state in memory. Rows and resume facts live
+  in :class:`zsieve.report.summary.Catalogue`, a SQLite cache in ``DIR`` (hidden file
+  ``.zsieve-catalogue.sqlite``) that is brought in line with ``DIR/objects/*.json`` at the
+  start of each run (one ``stat`` per record; changed or new records are read) and rebuilt from
+  the records if missing or damaged: the JSON records stay the only truth. Inputs seen (for
+  de-duplication) are kept there too. The summary tables and the index are streamed from it
+  in (file, index) order, atomically, every ``checkpoint_s`` seconds (the interval grows so
+  that writing them costs at most about 5% of the run), at the end and on interruption; a
+  rerun that changed nothing leaves them as they are.
 * **Hand decisions** in ``DIR/decisions.log`` (:mod:`zsieve.refit.decisions`) are never
   overwritten: a refitted record carries the decision in force in its ``hand`` field and the
   summary shows the hand z/grade. With ``keep_hand=False`` objects carrying a decision are
   measured again and show the engine's answer; the log itself is left as it is.
 * **Failures** are isolated: an unreadable file or a fit that raises becomes a ``failed`` record
   with a one-line message (the traceback goes to the debug log).
+
+Executors (the local pool here, :mod:`zsieve.cluster` for Dask) run tasks with
+:func:`init_worker` and :func:`run_task`, hand finished ones back with :func:`collect_result`,
+and record a file they gave up on with :func:`failure_row`.
 """
 
 from __future__ import annotations

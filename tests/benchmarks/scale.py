@@ -13,13 +13,14 @@ configuration runs in a fresh Python process so that its peak memory is its own:
   with one thread each);
 * ``dask1x2``: one Dask worker with two threads (are two threads in one process as good as two
   processes? numpy's FFTs release the GIL only part of the time);
-* ``dask2-small``: ``local:2`` on the first tenth of the files, for the client's memory
-  growth from the small to the full set.
+* ``dask2-small`` / ``jobs2-small``: ``local:2`` / 2 local processes on the first tenth of the
+  files, for the client's memory growth from the small to the full set.
 
 Printed per configuration: wall time of the batch (cluster start-up apart), spectra per second,
 the ratio to ``jobs1``, the client's peak resident memory (``VmHWM`` of /proc/self/status; for a
 LocalCluster the scheduler runs inside the client process and is included) and the largest
-worker's peak (Dask workers, read on each worker at the end). Figures are off; the seed is fixed.
+worker's peak (Dask workers: read on each worker at the end; local processes: the largest
+child, ``getrusage(RUSAGE_CHILDREN)``). Figures are off; the seed is fixed.
 """
 
 from __future__ import annotations
@@ -65,6 +66,9 @@ def main():
         t0 = time.perf_counter()
         summary = run_batch([conf["data"]], conf["out"], s)
         out["elapsed_s"] = time.perf_counter() - t0
+        if conf.get("jobs", 1) > 1:  # the pool's worker processes, joined by now
+            import resource
+            out["worker_peak_kb"] = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     out.update(client_peak_kb=vmhwm_kb(), rows=summary.rows, fitted=summary.n_fitted_now,
                failed=summary.counts.get("failed", 0))
     print("RESULT " + json.dumps(out))
@@ -80,6 +84,7 @@ CONFIGS = {
     "dask2": {"workers": 2},
     "dask1x2": {"workers": 1, "threads": 2},
     "dask2-small": {"workers": 2, "small": True},
+    "jobs2-small": {"jobs": 2, "small": True},
 }
 
 
@@ -149,11 +154,13 @@ def main(argv=None) -> int:
             wk = f"{r['worker_peak_kb'] / 1024:.0f}" if r["worker_peak_kb"] else "-"
             print(f"{name:12s} {r['rows']:8d} {r['startup_s']:8.1f} {r['elapsed_s']:8.1f} {rate:8.2f} {ratio:>8s} "
                   f"{r['client_peak_kb'] / 1024:10.0f} {wk:>10s} {r['failed']:6d}")
-        if "dask2" in results and "dask2-small" in results:
-            a, b = results["dask2-small"], results["dask2"]
-            print(f"\nclient peak memory, {a['rows']} -> {b['rows']} spectra on local:2: "
-                  f"{a['client_peak_kb'] / 1024:.0f} -> {b['client_peak_kb'] / 1024:.0f} MB "
-                  f"({100 * (b['client_peak_kb'] / a['client_peak_kb'] - 1):+.0f}%)")
+        print()
+        for big, little, what in (("dask2", "dask2-small", "Dask local:2"), ("jobs2", "jobs2-small", "2 local processes")):
+            if big in results and little in results:
+                a, b = results[little], results[big]
+                print(f"client peak memory, {a['rows']} -> {b['rows']} spectra, {what}: "
+                      f"{a['client_peak_kb'] / 1024:.0f} -> {b['client_peak_kb'] / 1024:.0f} MB "
+                      f"({100 * (b['client_peak_kb'] / a['client_peak_kb'] - 1):+.1f}%)")
         print(f"load average {os.getloadavg()[0]:.1f} at the end (other work on the machine slows every run alike)")
     finally:
         if not args.keep:

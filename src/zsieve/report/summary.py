@@ -1,9 +1,12 @@
 """The catalogue: one row per record, as ``summary.csv`` and ``summary.ecsv``.
 
 :func:`row_from_record` turns one JSON record into a flat row; :func:`write_summary` writes
-both tables (atomically) from rows, sorted by input file and spectrum index. The rows are
-always derived from the records, so :func:`rebuild_summary` can regenerate the tables from
-``DIR/objects`` alone (as the refit session does after a decision).
+both tables (atomically) from rows, sorted by input file and spectrum index, streaming them in
+chunks when they come sorted. The rows are always derived from the records, so
+:func:`rebuild_summary` can regenerate the tables from ``DIR/objects`` alone (as the refit
+session does after a decision). :class:`Catalogue` keeps the rows of a folder on disk (a
+rebuildable SQLite cache beside the records) so that runs of any size write their tables in
+bounded memory.
 
 Where a person decided (the record's ``hand`` field), ``z``, ``z_err`` and ``grade`` are the
 person's values, ``hand`` is ``True``, and the engine's answer stays in ``z_engine`` and
