@@ -366,12 +366,85 @@ def _stagger_px(centres, widths, span_px, n_max):
     return c, rows, n
 
 
+_SPRITE_LIMIT = 4096  # texts kept per sheet (a few hundred kB)
+
+
+@functools.lru_cache(maxsize=1)
+def _sprite_classes():
+    """An Agg canvas whose renderer keeps each distinct text it has drawn as a coverage bitmap.
+
+    Tick labels, line names, titles and axis labels repeat from object to object; drawing one
+    from its bitmap is a single blit instead of a shaping and a rasterisation per glyph. The
+    bitmap is matplotlib's own rendering of the text (drawn once on a scratch Agg renderer), so
+    the look is the same; a text is placed at the nearest whole pixel (matplotlib places glyphs
+    to 1/64 pixel, a difference below what the eye sees). Mathtext, non-antialiased text and
+    any failure fall back to matplotlib's own drawing.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg, RendererAgg
+
+    class SpriteRenderer(RendererAgg):
+        def __init__(self, width, height, dpi, sprites):
+            super().__init__(width, height, dpi)
+            self._sprites = sprites
+
+        def _sprite(self, s, prop, angle, mtext):
+            w, h, _ = self.get_text_width_height_descent(s, prop, ismath=False)
+            m = int(math.ceil(max(w, h))) + 8  # room for the text at any angle around the origin
+            scratch = RendererAgg(2 * m, 2 * m, self.dpi)
+            gc = scratch.new_gc()
+            gc.set_foreground("black")
+            RendererAgg.draw_text(scratch, gc, m, m, s, prop, angle, mtext=mtext)
+            gc.restore()
+            alpha = np.asarray(scratch.buffer_rgba())[..., 3]
+            rows, cols = np.flatnonzero(alpha.any(axis=1)), np.flatnonzero(alpha.any(axis=0))
+            if rows.size == 0:
+                return None
+            crop = np.ascontiguousarray(alpha[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1])
+            return crop, int(cols[0]) - m, int(rows[-1]) + 1 - m
+
+        def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
+            if ismath or not gc.get_antialiased():
+                return super().draw_text(gc, x, y, s, prop, angle, ismath=ismath, mtext=mtext)
+            features = mtext.get_fontfeatures() if mtext is not None else None
+            language = mtext.get_language() if mtext is not None else None
+            key = (s, tuple(prop.get_family()), prop.get_style(), prop.get_variant(), prop.get_weight(),
+                   prop.get_stretch(), prop.get_size_in_points(), prop.get_file(), float(angle),
+                   tuple(features) if features else None, language)
+            try:
+                if key not in self._sprites:
+                    if len(self._sprites) >= _SPRITE_LIMIT:
+                        self._sprites.clear()
+                    self._sprites[key] = self._sprite(s, prop, angle, mtext)
+                sprite = self._sprites[key]
+                if sprite is not None:
+                    crop, dx, dy = sprite
+                    self._renderer.draw_text_image(crop, int(round(x)) + dx, int(round(y)) + dy, 0, gc)
+            except (AttributeError, TypeError, ValueError) as exc:  # another matplotlib: its own way
+                log.debug("text bitmap not used (%s); drawing %r directly", exc, s)
+                self._sprites.pop(key, None)
+                super().draw_text(gc, x, y, s, prop, angle, ismath=ismath, mtext=mtext)
+
+    class SpriteCanvas(FigureCanvasAgg):
+        def __init__(self, figure):
+            super().__init__(figure)
+            self._sprites: dict = {}
+
+        def get_renderer(self):
+            w, h = self.get_width_height(physical=True)
+            key = w, h, self.figure.dpi
+            if self._lastKey != key:
+                self.renderer = SpriteRenderer(w, h, self.figure.dpi, self._sprites)
+                self._lastKey = key
+            return self.renderer
+
+    return SpriteCanvas
+
+
 class _Sheet:
     """The figure's fixed geometry: axes, labels and text slots, built once and refilled for each
     object (building axes and their ticks costs more than drawing them)."""
 
     def __init__(self, dpi: float):
-        from matplotlib.backends.backend_agg import FigureCanvasAgg
         from matplotlib.figure import Figure
         from matplotlib.lines import Line2D
         from matplotlib.patches import Patch
@@ -379,7 +452,7 @@ class _Sheet:
 
         self.dpi = float(dpi)
         fig = self.fig = Figure(figsize=FIGSIZE, dpi=dpi)
-        FigureCanvasAgg(fig)
+        _sprite_classes()(fig)
         gs = fig.add_gridspec(3, 4, height_ratios=[1.45, 1.0, 1.05], hspace=0.5, wspace=0.32,
                               left=0.06, right=0.985, top=0.95, bottom=0.065)
         bottom = gs[2, :].subgridspec(1, 3, width_ratios=[1.75, 1.0, 1.25], wspace=0.25)
