@@ -261,3 +261,4 @@ def balmer_test(wave, resid, ivar, z, sigma_kms, *, h_beta: float = 4862.683, h_
         return None
     err = math.hypot(ea, BALMER_CASE_B * eb)
     return dict(flux_hb=fb, flux_ha=fa, deficit=float((BALMER_CASE_B * fb - fa) / err))
+

@@ -647,7 +647,8 @@ def _xcorr_refuted(peak, best, uniq, evid, rejected=(), *, min_gap: float = 100.
     """True when the correlation's peak was refined as a candidate and the line fit there lost
     decisively (evidence below the best by ``min_gap`` and by ``min_frac`` of the best's), or
     the candidate there was dropped for want of its Ly-alpha forest; and the answer leads every
-    other rival by ``min_gap`` too.
+    other rival by as much (a landscape of near-equal fits, e.g. a Balmer series aliased onto
+    itself, is no refutation).
 
     The template correlation is a proposal, the joint line fit with the uncertainties is the
     test: broad lines alias (Mg II 2799 of a z ~ 1 quasar falls where Ly-alpha of z ~ 3.8 would),
@@ -657,7 +658,7 @@ def _xcorr_refuted(peak, best, uniq, evid, rejected=(), *, min_gap: float = 100.
         return False
     # the answer must also stand clear of every rival it was compared with
     rivals = [e for (f, _), e in zip(uniq, evid) if f is not best and not _same_z(f.z, best.z, 300.0)]
-    if rivals and float(evid[0]) - max(rivals) < min_gap:
+    if rivals and float(evid[0]) - max(rivals) < max(min_gap, min_frac * float(evid[0])):
         return False
     window = 3000.0 if peak.template_class == "quasar" else 500.0
     if any(_same_z(r["z"], peak.z, window) for r in rejected):
