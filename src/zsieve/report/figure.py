@@ -388,19 +388,31 @@ def _sprite_classes():
             self._sprites = sprites
 
         def _sprite(self, s, prop, angle, mtext):
-            w, h, _ = self.get_text_width_height_descent(s, prop, ismath=False)
-            m = int(math.ceil(max(w, h))) + 8  # room for the text at any angle around the origin
-            scratch = RendererAgg(2 * m, 2 * m, self.dpi)
+            # room for the text around its origin: the advance-width bound, one line high
+            size = prop.get_size_in_points() * self.dpi / 72.0
+            w = text_width_px(s, prop.get_size_in_points(), self.dpi, prop.get_family()[0]) + size + 8
+            h = 2.0 * size + 8
+            if angle == 0:
+                dims, origin = (w + h, 2 * h), (h, h)
+            elif angle == 90:
+                dims, origin = (2 * h, w + h), (h, w)
+            else:
+                m = w + h
+                dims, origin = (2 * m, 2 * m), (m, m)
+            scratch = RendererAgg(int(math.ceil(dims[0])), int(math.ceil(dims[1])), self.dpi)
+            ox, oy = int(origin[0]), int(origin[1])
             gc = scratch.new_gc()
             gc.set_foreground("black")
-            RendererAgg.draw_text(scratch, gc, m, m, s, prop, angle, mtext=mtext)
+            RendererAgg.draw_text(scratch, gc, ox, oy, s, prop, angle, mtext=mtext)
             gc.restore()
             alpha = np.asarray(scratch.buffer_rgba())[..., 3]
             rows, cols = np.flatnonzero(alpha.any(axis=1)), np.flatnonzero(alpha.any(axis=0))
             if rows.size == 0:
                 return None
+            if rows[0] == 0 or cols[0] == 0 or rows[-1] == alpha.shape[0] - 1 or cols[-1] == alpha.shape[1] - 1:
+                raise ValueError("text larger than its bitmap")  # cut off: draw it the usual way
             crop = np.ascontiguousarray(alpha[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1])
-            return crop, int(cols[0]) - m, int(rows[-1]) + 1 - m
+            return crop, int(cols[0]) - ox, int(rows[-1]) + 1 - oy
 
         def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
             if ismath or not gc.get_antialiased():
@@ -737,6 +749,19 @@ class _Sheet:
         self.text.set_text(block)
 
 
+def _write_png(fig, buf, dpi) -> None:
+    """The Agg canvas as an RGB PNG (the figure is opaque: no alpha channel, a third less to
+    encode) with light compression (a third of the encoding time of the default for ~10% more
+    bytes)."""
+    from PIL import Image, PngImagePlugin
+
+    fig.canvas.draw()
+    rgb = np.ascontiguousarray(np.asarray(fig.canvas.buffer_rgba())[..., :3])
+    info = PngImagePlugin.PngInfo()
+    info.add_text("Software", "zsieve")
+    Image.fromarray(rgb).save(buf, format="png", compress_level=3, pnginfo=info, dpi=(dpi, dpi))
+
+
 _LOCAL = threading.local()
 
 
@@ -771,9 +796,8 @@ def write_figure(path: str | os.PathLike, result, spectrum, *, dpi: int = 100, a
             buf = io.BytesIO()
             if target.lower().endswith(".pdf"):
                 sheet.fig.savefig(buf, format="pdf", dpi=dpi)
-            else:  # light compression: a third of the encoding time for ~20% larger files
-                sheet.fig.savefig(buf, format="png", dpi=dpi, metadata={"Software": "zsieve"},
-                                  pil_kwargs={"compress_level": 3})
+            else:
+                _write_png(sheet.fig, buf, dpi)
             write_atomic(target, buf.getvalue())
     finally:
         try:
