@@ -91,8 +91,9 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
         act = np.flatnonzero(fit.amps > 0)
         if act.size == 0 or m.pix.size == 0:
             continue
-        G, D = m.design(fit.z, fit.width_kms, fit.broad_scale, deriv=True)
-        J = np.hstack([G[:, act], (D @ fit.amps)[:, None]])
+        G = m.design(fit.z, fit.width_kms, fit.broad_scale)
+        dz = m.model_derivs(fit.z, fit.width_kms, fit.broad_scale, fit.amps)[0]  # = D @ amps
+        J = np.hstack([G[:, act], dz[:, None]])
         WJ = J * m.w[:, None]
         F = J.T @ WJ
         try:

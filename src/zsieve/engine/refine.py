@@ -124,16 +124,23 @@ class LineModel:
         self._hi = np.searchsorted(self.x, (obs + half)[self._use])
         # the (line, pixel) pairs of those slices, flattened (ragged: no padding), for one
         # vectorised evaluation of all profiles
+        # vectorised evaluation of all profiles; ordered by model column, so that per-column
+        # sums are contiguous (np.add.reduceat)
         nwin = np.maximum(self._hi - self._lo, 0)
-        self._eline = np.repeat(np.arange(self._use.size), nwin)
-        start = np.concatenate([[0], np.cumsum(nwin)[:-1]]).astype(int)
-        self._epix = self._lo[self._eline] + (np.arange(self._eline.size) - start[self._eline])
+        ordl = np.argsort(self.col_of_line[self._use], kind="stable")
+        nw = nwin[ordl]
+        self._eline = np.repeat(ordl, nw)
+        start = np.repeat(np.cumsum(nw) - nw, nw)
+        self._epix = self._lo[self._eline] + (np.arange(self._eline.size) - start)
         self._ex = self.x[self._epix]
         self._ecol = self.col_of_line[self._use][self._eline]
         self._eflat = self._epix * max(groups.size, 1) + self._ecol
         self._ew = self.w[self._epix]
         self._pairs = None
         self._prof = None
+        # first entry of each column (every column has entries: its lines cover >= 3 pixels)
+        self._cstart = np.flatnonzero(np.r_[True, self._ecol[1:] != self._ecol[:-1]]) if self._ecol.size else \
+            np.zeros(0, dtype=int)
 
     @property
     def n_cols(self) -> int:
@@ -278,39 +285,52 @@ class LineModel:
         return p
 
     def _pair_index(self):
-        """Entry pairs on a common pixel: (first, second, flat (col, col) index, weight)."""
+        """Distinct entries on a common pixel (overlapping line windows), ``e1 < e2``, grouped by
+        their (column, column) cell: ``(e1, e2, weight, group starts, cells)``."""
         if self._pairs is None:
+            k = max(self.n_cols, 1)
             order = np.argsort(self._epix, kind="stable")
             pe = self._epix[order]
             start = np.flatnonzero(np.r_[True, pe[1:] != pe[:-1]])
             cnt = np.diff(np.r_[start, pe.size])
-            # each entry pairs with every entry of its pixel (itself included)
+            # every ordered pair of entries of one pixel, then those with e1 < e2
             gcnt = np.repeat(cnt, cnt)
-            gstart = np.repeat(start, cnt)
             i1 = np.repeat(order, gcnt)
             off = np.arange(i1.size) - np.repeat(np.cumsum(gcnt) - gcnt, gcnt)
-            i2 = order[np.repeat(gstart, gcnt) + off]
-            k = max(self.n_cols, 1)
-            self._pairs = (i1, i2, self._ecol[i1] * k + self._ecol[i2], self._ew[i1])
+            i2 = order[np.repeat(np.repeat(start, cnt), gcnt) + off]
+            keep = i1 < i2
+            i1, i2 = i1[keep], i2[keep]
+            cell = self._ecol[i1] * k + self._ecol[i2]
+            srt = np.argsort(cell, kind="stable")
+            i1, i2, cell = i1[srt], i2[srt], cell[srt]
+            cstart = np.flatnonzero(np.r_[True, cell[1:] != cell[:-1]]) if cell.size else np.zeros(0, int)
+            self._pairs = (i1, i2, self._ew[i1], cstart, cell[cstart])
         return self._pairs
 
     def normal_equations(self, p, rr):
         """``(G^T W G, G^T W r)`` from entry profiles ``p`` (``(E,)`` or ``(nz, E)``) and the
-        residual ``rr`` on the window pixels; stacked ``(nz, k, k), (nz, k)`` for 2-D ``p``."""
+        residual ``rr`` on the window pixels; stacked ``(nz, k, k), (nz, k)`` for 2-D ``p``.
+
+        Each entry's own square and its residual product are summed per column (entries are
+        stored column by column); the few pairs of overlapping windows are summed per cell and
+        added symmetrically.
+        """
         k = self.n_cols
-        i1, i2, flat, wp = self._pair_index()
+        i1, i2, wp, cstart, cells = self._pair_index()
         re = self._ew * rr[self._epix]
-        if p.ndim == 1:
-            F = np.bincount(flat, wp * p[i1] * p[i2], minlength=k * k).reshape(k, k)
-            b = np.bincount(self._ecol, re * p, minlength=k)
-            return F, b
-        nz = p.shape[0]
-        rows = (np.arange(nz) * (k * k))[:, None]
-        F = np.bincount((rows + flat).ravel(), (wp * p[:, i1] * p[:, i2]).ravel(),
-                        minlength=nz * k * k).reshape(nz, k, k)
-        b = np.bincount(((np.arange(nz) * k)[:, None] + self._ecol).ravel(), (re * p).ravel(),
-                        minlength=nz * k).reshape(nz, k)
-        return F, b
+        two = p.ndim == 2
+        P = p if two else p[None, :]
+        nz = P.shape[0]
+        diag = np.add.reduceat(P * P * self._ew, self._cstart, axis=1)
+        b = np.add.reduceat(P * re, self._cstart, axis=1)
+        T = np.zeros((nz, k * k))
+        if cells.size:
+            T[:, cells] = np.add.reduceat(P[:, i1] * P[:, i2] * wp, cstart, axis=1)
+        T = T.reshape(nz, k, k)
+        F = T + T.transpose(0, 2, 1)
+        ii = np.arange(k)
+        F[:, ii, ii] += diag
+        return (F, b) if two else (F[0], b[0])
 
     def model_vector(self, p, amps):
         """``design(...) @ amps`` on the window pixels from entry profiles ``p``."""
@@ -732,13 +752,13 @@ def formal_z_error(model: LineModel, z, wk, bs, a, active_cols) -> float:
     """1-sigma error of z from the linearised joint fit (z, active amplitudes, widths)."""
     if active_cols.size == 0:
         return math.inf
-    G, D = model.design(z, wk, bs, deriv=True)
-    cols = [G[:, active_cols], (D @ a)[:, None]]
-    dW, dB = model.design_dwidth(z, wk, bs)
+    G = model.design(z, wk, bs)
+    dz, dw, db = model.model_derivs(z, wk, bs, a)  # = (D @ a, dW @ a, dB @ a) of the matrices
+    cols = [G[:, active_cols], dz[:, None]]
     if wk > 1.0:
-        cols.append((dW @ a)[:, None])
+        cols.append(dw[:, None])
     if model._any_broad:
-        cols.append((dB @ a)[:, None])
+        cols.append(db[:, None])
     J = np.hstack(cols)
     F = J.T @ (J * model.w[:, None])
     try:
