@@ -54,6 +54,7 @@ import json
 import logging
 import os
 import sqlite3
+import stat
 import sys
 import time
 import traceback
@@ -150,8 +151,8 @@ def discover(args: Iterable[str], *, exclude: Iterable[str] = (), root: str | No
     def inside_excluded(real: str) -> bool:
         return any(real == e or real.startswith(e + os.sep) for e in excl)
 
-    def emit(path: str, explicit: bool):
-        real = os.path.realpath(path)
+    def emit(path: str, explicit: bool, real: str | None = None):
+        real = real or os.path.realpath(path)
         if real in seen or inside_excluded(real):
             return None
         seen.add(real)
@@ -184,7 +185,8 @@ def discover(args: Iterable[str], *, exclude: Iterable[str] = (), root: str | No
 
 def _walk(top: str, emit, inside_excluded) -> Iterator[InputFile]:
     for dirpath, dirnames, filenames in os.walk(top, followlinks=False):
-        if inside_excluded(os.path.realpath(dirpath)):
+        real_dir = os.path.realpath(dirpath)
+        if inside_excluded(real_dir):
             dirnames[:] = []
             continue
         dirnames[:] = sorted(d for d in dirnames if not _hidden(d))
@@ -192,8 +194,17 @@ def _walk(top: str, emit, inside_excluded) -> Iterator[InputFile]:
             if _hidden(name):
                 continue
             p = os.path.join(dirpath, name)
-            if os.path.isfile(p):
-                item = emit(p, False)
+            try:
+                st = os.lstat(p)
+            except OSError:
+                continue
+            if stat.S_ISLNK(st.st_mode):  # a link to a file: followed (and de-duplicated by target)
+                if os.path.isfile(p):
+                    item = emit(p, False)
+                    if item:
+                        yield item
+            elif stat.S_ISREG(st.st_mode):  # no link: the real path is the folder's plus the name
+                item = emit(p, False, os.path.join(real_dir, name))
                 if item:
                     yield item
 
@@ -695,10 +706,17 @@ def _run_locked(ctx: _Context, settings: BatchSettings, paths: list[str], root: 
         for item in discover(paths, exclude=[str(out_dir)], root=root, seen=_InputSet(cat)):
             summary.n_files += 1
             base = make_key(item.relpath)
-            if not item.explicit:
+            f = cat.facts(base)
+            sha = None
+            if f is not None and f["sha"] and f["status"] != "skipped":
+                # measured before: if the bytes are the same it was a candidate then and is now
+                try:
+                    sha = file_sha256(item.path)
+                except OSError:
+                    sha = None
+            if not item.explicit and not (sha and sha == f["sha"]):
                 ok, why = _is_candidate(item.path)
                 if not ok:
-                    f = cat.facts(base)
                     if f and f["status"] == "skipped" and not settings.force and f["message"] == why:
                         cat.mark_seen([base])
                     else:
@@ -706,12 +724,11 @@ def _run_locked(ctx: _Context, settings: BatchSettings, paths: list[str], root: 
                     yield None
                     continue
             try:
-                sha = file_sha256(item.path)
+                sha = sha or file_sha256(item.path)
             except OSError as exc:
                 take([failure_row(ctx, item, None, base, f"not readable ({exc.strerror or exc})")])
                 yield None
                 continue
-            f = cat.facts(base)
             if f and not settings.force and not f["transient"] and f["sha"] == sha and f["settings"] == ctx.settings_hash:
                 keys = [base] + [make_key(item.relpath, i) for i in range(1, f["n"])]
                 fk = {base: f}

@@ -457,6 +457,7 @@ class Catalogue:
         self.out_dir = Path(out_dir)
         self.path = self.out_dir / CATALOGUE_NAME
         self.changes = 0
+        self._changes_counted = 0
         self.run = 0
         self._last_commit = time.monotonic()
         self.con = self._open()
@@ -469,7 +470,9 @@ class Catalogue:
         con.execute("PRAGMA synchronous=NORMAL")
         version = con.execute("PRAGMA user_version").fetchone()[0]
         tables = con.execute("SELECT count(*) FROM sqlite_master").fetchone()[0]
-        if version != _SCHEMA_VERSION and tables:
+        if version == _SCHEMA_VERSION and tables:
+            return con  # opening an existing catalogue writes nothing (a run may be writing it)
+        if tables:
             con.close()
             raise sqlite3.DatabaseError(f"catalogue version {version}, not {_SCHEMA_VERSION}")
         con.executescript(_SCHEMA)
@@ -531,8 +534,9 @@ class Catalogue:
         """Commit (at most every ``every_s`` seconds)."""
         now = time.monotonic()
         if now - self._last_commit >= every_s:
-            if self.changes:
+            if self.changes != self._changes_counted:  # rows changed: the written tables are out of date
                 self._bump("generation")
+                self._changes_counted = self.changes
             self.con.commit()
             self._last_commit = now
 
@@ -558,12 +562,18 @@ class Catalogue:
 
     # ---- rows
     def put(self, row: dict[str, Any], facts: dict[str, Any] | None = None, *, src_path: str | None = None) -> None:
-        """Insert or replace one row (its facts from ``facts`` or ``row[FACTS_KEY]``)."""
+        """Insert or replace one row (its facts from ``facts`` or ``row[FACTS_KEY]``).
+
+        ``src_path`` is the absolute path of the input it came from (default: the record's, else
+        the row's file); records of the same input spectrum under another key are superseded.
+        """
         row = dict(row)
         facts = facts or row.pop(FACTS_KEY, None) or {}
         row.pop(FACTS_KEY, None)
         key = str(row.get("key") or "")
-        src = src_path or facts.get("path") or os.path.abspath(str(row.get("file") or ""))
+        if src_path is None:
+            src_path = facts.get("path") or os.path.abspath(str(row.get("file") or ""))
+        src = src_path or None  # "": the record does not say which input it came from
         hand = facts.get("hand")
         self.con.execute(
             "INSERT OR REPLACE INTO objects(key, sort_file, idx, status, grade, message, row, sha, settings, n,"
@@ -709,7 +719,8 @@ class Catalogue:
                 row = row_from_record(rec)
                 row["key"] = key
                 seen = con.execute("SELECT seen FROM objects WHERE key=?", (key,)).fetchone()
-                self.put(row, record_facts(rec, path))
+                facts = record_facts(rec, path)
+                self.put(row, facts, src_path=facts["path"] or "")
                 if seen and seen[0] is not None:
                     con.execute("UPDATE objects SET seen=? WHERE key=?", (seen[0], key))
         con.execute("DELETE FROM scan")
