@@ -240,13 +240,10 @@ def open_atomic(path: str | os.PathLike) -> Iterator[Any]:
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, 0o644)
-        os.replace(tmp, path)
-    except BaseException:
-        try:
+        os.replace(tmp, path)  # from here on ``tmp`` names nothing
+    finally:
+        if os.path.lexists(tmp):  # the block or the writes failed: the destination is untouched
             os.unlink(tmp)
-        except OSError:
-            pass
-        raise
 
 
 def _table_text(rows: list[dict[str, Any]], meta, fmt: str) -> str:
