@@ -138,6 +138,7 @@ class LineModel:
         self._ew = self.w[self._epix]
         self._pairs = None
         self._prof = None
+        self._re = None
         # first entry of each column (every column has entries: its lines cover >= 3 pixels)
         self._cstart = np.flatnonzero(np.r_[True, self._ecol[1:] != self._ecol[:-1]]) if self._ecol.size else \
             np.zeros(0, dtype=int)
@@ -317,8 +318,20 @@ class LineModel:
         """
         k = self.n_cols
         i1, i2, wp, cstart, cells = self._pair_index()
-        re = self._ew * rr[self._epix]
+        if self._re is not None and self._re[0] is rr:  # the same residual as the last call
+            re = self._re[1]
+        else:
+            re = self._ew * rr[self._epix]
+            self._re = (rr, re)
         two = p.ndim == 2
+        if not two:  # one point (the iterations of a fit): 1-D sums
+            T = np.zeros(k * k)
+            if cells.size:
+                T[cells] = np.add.reduceat(p[i1] * p[i2] * wp, cstart)
+            T = T.reshape(k, k)
+            F = T + T.T
+            F.ravel()[::k + 1] += np.add.reduceat(p * p * self._ew, self._cstart)
+            return F, np.add.reduceat(p * re, self._cstart)
         P = p if two else p[None, :]
         nz = P.shape[0]
         diag = np.add.reduceat(P * P * self._ew, self._cstart, axis=1)
@@ -482,6 +495,10 @@ def nnls_normal(F, b, start=None, maxiter=None):
         return np.zeros(0), 0.0
     Fr = _ridged(F)
     tol = 1e-13 * max(float(np.max(np.abs(b))), 1e-300) * n
+    if start is not None and start.all():  # all columns active: one solve and the KKT check
+        s = _spd_solve(Fr, b)
+        if s is not None and np.all(s > 0):
+            return s, float(2.0 * (b @ s) - s @ (Fr @ s))
     a = np.zeros(n)
     if start is None:  # guess: the positive part of the unconstrained solution
         s = _spd_solve(Fr, b)
