@@ -367,6 +367,7 @@ def _stagger_px(centres, widths, span_px, n_max):
 
 
 _SPRITE_LIMIT = 4096  # texts kept per sheet (a few hundred kB)
+_UNIQUE = "zsieve-unique-text"  # gid of texts that differ from object to object: drawn directly
 
 
 @functools.lru_cache(maxsize=1)
@@ -415,7 +416,7 @@ def _sprite_classes():
             return crop, int(cols[0]) - ox, int(rows[-1]) + 1 - oy
 
         def draw_text(self, gc, x, y, s, prop, angle, ismath=False, mtext=None):
-            if ismath or not gc.get_antialiased():
+            if ismath or not gc.get_antialiased() or (mtext is not None and mtext.get_gid() == _UNIQUE):
                 return super().draw_text(gc, x, y, s, prop, angle, ismath=ismath, mtext=mtext)
             features = mtext.get_fontfeatures() if mtext is not None else None
             language = mtext.get_language() if mtext is not None else None
@@ -480,6 +481,9 @@ class _Sheet:
         self.text_room_px = ((0.995 - cell.x0) * w_px, (self.text_xy[1] - 0.004) * h_px)
         self.text = fig.text(*self.text_xy, "", va="top", ha="left", fontsize=_TEXT_PT, family="monospace",
                              linespacing=1.18)
+        self.text.set_gid(_UNIQUE)
+        self.ax.title.set_gid(_UNIQUE)
+        self.ax._left_title.set_gid(_UNIQUE)
         z0 = self.zooms[0].get_position()
         self.no_lines = fig.text(z0.x0, z0.y0 + 0.5 * z0.height, "no matched lines to show", fontsize=9,
                                  color="#555555", va="center", visible=False)
@@ -743,7 +747,7 @@ class _Sheet:
         longest = max(rows, key=len)
         room_w, room_h = self.text_room_px
         per_pt_w = text_width_px(longest, 1.0, self.dpi, "monospace")
-        per_pt_h = len(rows) * 1.18 * 1.2 * self.dpi / 72.0  # line spacing x line height of the font
+        per_pt_h = (len(rows) * 1.18 + 0.5) * self.dpi / 72.0  # 1.18 em a line (the spacing) + the descent
         size = min(_TEXT_PT, room_w / max(per_pt_w, 1e-9), room_h / per_pt_h)
         self.text.set_fontsize(size)
         self.text.set_text(block)
