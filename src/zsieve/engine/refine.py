@@ -279,8 +279,13 @@ class LineModel:
         zs = np.asarray(zs, dtype=float)
         mu = (1 + zs)[..., None] * base
         s = mu * sv
-        u = (self._ex - mu[..., e]) / s[..., e]
-        p = np.exp(-0.5 * u * u) * (self._coef / (SQRT2PI * s))[..., e]
+        u = mu[..., e]  # in place from here: (x - mu) / s, then the profile
+        np.subtract(self._ex, u, out=u)
+        u /= s[..., e]
+        p = u * u
+        p *= -0.5
+        np.exp(p, out=p)
+        p *= (self._coef / (SQRT2PI * s))[..., e]
         if scalar:  # kept for model_derivs at the same point (the Jacobian follows a solve)
             self._prof = ((float(zs), float(width_kms), float(broad_scale)), p, u)
         return p
