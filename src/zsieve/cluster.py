@@ -18,8 +18,11 @@ bar)``. :func:`run_tasks` is that executor for Dask:
   object's key and replaced atomically, a task that ran twice still leaves exactly one record;
   a file whose every attempt died becomes a ``failed`` record marked transient, which the next
   run measures again (as with the local pool);
-* resume, hand decisions and the summary are the batch layer's own: the summary and index are
-  assembled from the records at checkpoints, at the end and on resume.
+* resume, hand decisions and the summary are the batch layer's own: the rows that come back
+  go into the output folder's on-disk catalogue (:class:`zsieve.report.summary.Catalogue`, a
+  cache of the records, checked against them on resume), from which the summary and index are
+  streamed at checkpoints and at the end, so the client's memory stays flat however many files
+  the folder holds.
 
 Schedulers (:func:`parse_scheduler`): ``local:N`` starts a
 ``distributed.LocalCluster`` of ``N`` worker processes with one thread each on this machine
