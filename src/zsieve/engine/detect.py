@@ -114,11 +114,6 @@ def _kernel_ffts(widths, nfft):
     return out
 
 
-def _gauss_sum(p, x, n):
-    a, mu, s = p[0:n], p[n:2 * n], p[2 * n:3 * n]
-    return (a[:, None] * np.exp(-0.5 * ((x[None, :] - mu[:, None]) / s[:, None]) ** 2)).sum(0)
-
-
 def fit_isolated(wave, resid, ivar, cont, peaks, widths_A, amps, n_iter: int = 8):
     """Weighted Gaussian fits of many isolated features at once (batched Gauss-Newton).
 
@@ -276,14 +271,24 @@ def _fit_group(wave, resid, ivar, cont, peaks, widths_A, amps, dlam):
     eps = 1e-9 * np.maximum(np.abs(p0), 1e-6)
     p0 = np.clip(p0, np.where(np.isfinite(lb), lb + eps, p0), np.where(np.isfinite(ub), ub - eps, p0))
 
+    last = [None, None, None]  # the profiles at the last point (the Jacobian follows fun there)
+
+    def profiles(p):
+        key = p.tobytes()
+        if last[0] != key:
+            mu, s = p[n:2 * n], p[2 * n:3 * n]
+            u = (x[:, None] - mu[None, :]) / s[None, :]
+            last[:] = key, u, np.exp(-0.5 * u * u)
+        return last[1], last[2]
+
     def fun(p):
-        return (_gauss_sum(p, x, n) - y) * sw
+        return (profiles(p)[1] @ p[0:n] - y) * sw
 
     def jac(p):
-        a, mu, s = p[0:n], p[n:2 * n], p[2 * n:3 * n]
-        u = (x[:, None] - mu[None, :]) / s[None, :]
-        e = np.exp(-0.5 * u * u)
-        return np.hstack([e, a * e * u / s, a * e * u * u / s]) * sw[:, None]
+        a, s = p[0:n], p[2 * n:3 * n]
+        u, e = profiles(p)
+        ae = a * e
+        return np.hstack([e, ae * u / s, ae * u * u / s]) * sw[:, None]
 
     p, _ = lm_bounded(fun, jac, p0, lb, ub, max_nfev=30 * n, rtol=1e-6, xtol=1e-6)
     J = jac(p)
