@@ -90,50 +90,55 @@ class LineModel:
         obs = self._base * (1 + z)
         sv = self._sigma_v(width_kms, broad_scale)
         half = obs * (WINDOW_SIGMA * sv / C_KMS + z_slack / (1 + z))
-        lo = np.searchsorted(wave, obs - half)
-        hi = np.searchsorted(wave, obs + half)
+        core = 1.5 * obs * sv / C_KMS
+        nl = obs.size
+        # window edges and core edges of every line in one search
+        lo, hi, core_lo, core_hi = np.searchsorted(
+            wave, np.concatenate([obs - half, obs + half, obs - core, obs + core])).reshape(4, nl)
+        good = ivar > 0
         good_cs = np.zeros(wave.size + 1, dtype=np.int64)
-        np.cumsum(ivar > 0, out=good_cs[1:])
+        np.cumsum(good, out=good_cs[1:])
         cover = good_cs[hi] - good_cs[lo]
         # a line is usable when most of its core is on good pixels
-        core_lo = np.searchsorted(wave, obs - 1.5 * obs * sv / C_KMS)
-        core_hi = np.searchsorted(wave, obs + 1.5 * obs * sv / C_KMS)
-        core_n = core_hi - core_lo
         core_good = good_cs[core_hi] - good_cs[core_lo]
-        self.present = (cover >= 3) & (core_good >= np.maximum(2, 0.5 * core_n))
-        if self.present.any():
+        self.present = (cover >= 3) & (core_good >= np.maximum(2, 0.5 * (core_hi - core_lo)))
+        use = np.flatnonzero(self.present)
+        if use.size:
             n1 = wave.size + 1
-            sel = (np.bincount(lo[self.present], minlength=n1) - np.bincount(hi[self.present], minlength=n1))
-            pix = np.flatnonzero((np.cumsum(sel)[:-1] > 0) & (ivar > 0))
+            sel = np.bincount(lo[use], minlength=n1) - np.bincount(hi[use], minlength=n1)
+            pix = np.flatnonzero((np.cumsum(sel)[:-1] > 0) & good)
         else:
             pix = np.zeros(0, dtype=int)
         self.pix = pix
         self.x = wave[pix]
         self.w = ivar[pix]
-        groups, inv = np.unique(ls.group[self.present], return_inverse=True)
+        gl = ls.group[use]  # the groups present (sorted) and each used line's column
+        mark = np.zeros(int(gl.max()) + 1 if gl.size else 0, dtype=bool)
+        mark[gl] = True
+        groups = np.flatnonzero(mark)
+        inv = (np.cumsum(mark) - 1)[gl]
         self.groups = groups  # model columns = these groups
-        self.col_of_line = np.full(ls.wave.size, -1)
-        self.col_of_line[self.present] = inv
-        self._use = np.flatnonzero(self.col_of_line >= 0)
-        onehot = np.zeros((self._use.size, groups.size))
-        onehot[np.arange(self._use.size), self.col_of_line[self._use]] = 1.0
-        self._onehot = onehot * (ls.sign[self._use] * ls.ratio[self._use])[:, None]
-        self._coef = ls.sign[self._use] * ls.ratio[self._use]
+        self.col_of_line = np.full(nl, -1)
+        self.col_of_line[use] = inv
+        self._use = use
+        self._coef = ls.sign[use] * ls.ratio[use]
+        onehot = np.zeros((use.size, groups.size))
+        onehot[np.arange(use.size), inv] = self._coef
+        self._onehot = onehot
         # each line's own slice of the window pixels (profiles are negligible outside it)
-        self._lo = np.searchsorted(self.x, (obs - half)[self._use])
-        self._hi = np.searchsorted(self.x, (obs + half)[self._use])
+        self._lo, self._hi = np.searchsorted(self.x, np.concatenate([(obs - half)[use], (obs + half)[use]])
+                                             ).reshape(2, use.size)
         # the (line, pixel) pairs of those slices, flattened (ragged: no padding), for one
-        # vectorised evaluation of all profiles
         # vectorised evaluation of all profiles; ordered by model column, so that per-column
         # sums are contiguous (np.add.reduceat)
         nwin = np.maximum(self._hi - self._lo, 0)
-        ordl = np.argsort(self.col_of_line[self._use], kind="stable")
+        ordl = np.argsort(inv, kind="stable")
         nw = nwin[ordl]
         self._eline = np.repeat(ordl, nw)
         start = np.repeat(np.cumsum(nw) - nw, nw)
         self._epix = self._lo[self._eline] + (np.arange(self._eline.size) - start)
         self._ex = self.x[self._epix]
-        self._ecol = self.col_of_line[self._use][self._eline]
+        self._ecol = inv[self._eline]
         self._eflat = self._epix * max(groups.size, 1) + self._ecol
         self._ew = self.w[self._epix]
         self._pairs = None
