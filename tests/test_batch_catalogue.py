@@ -232,3 +232,26 @@ def test_discovery_dedupes_through_the_catalogue(run_dir, tmp_path):
     with Catalogue(out) as cat:
         assert cat.con.execute("SELECT count(*) FROM inputs").fetchone()[0] == 7
     assert os.path.isfile(out / CATALOGUE_NAME)
+
+
+def test_a_folder_that_takes_no_database_still_gets_its_run(run_dir, tmp_path, monkeypatch):
+    import sqlite3
+
+    data, out0 = run_dir
+    out = tmp_path / "out"
+    shutil.copytree(out0, out)
+    (out / CATALOGUE_NAME).unlink()
+    real = Catalogue._connect
+
+    def refuse(self, where=None):  # as SQLite answers on a file system without the locks it needs
+        if where is None:
+            raise sqlite3.OperationalError("disk I/O error")
+        return real(self, where)
+
+    monkeypatch.setattr(Catalogue, "_connect", refuse)
+    before = _snapshot(out)
+    s = run_batch([str(data)], out, BatchSettings(**SETTINGS))
+    assert s.n_fitted_now == 0 and s.rows == 7 and not (out / CATALOGUE_NAME).exists()
+    assert _snapshot(out) == before
+    rows = rebuild_summary(out)  # the refit layer's path, in memory too
+    assert isinstance(rows, list) and len(rows) == 7

@@ -23,8 +23,8 @@ described in :mod:`zsieve.report.record`:
   again: their facts (checksum, settings hash, spectrum count, status, hand decision) are
   looked up per file in the folder's catalogue.
 * **Flat memory**: the client keeps no per-object state in memory. Rows and resume facts live
-  in :class:`zsieve.report.summary.Catalogue`, a SQLite cache in ``DIR`` (hidden file
-  ``.zsieve-catalogue.sqlite``) that is brought in line with ``DIR/objects/*.json`` at the
+  in :class:`zsieve.report.summary.Catalogue`, a SQLite cache in ``DIR`` (the file
+  ``zsieve-cache.sqlite``, safe to delete) that is brought in line with ``DIR/objects/*.json`` at the
   start of each run (one ``stat`` per record; changed or new records are read) and rebuilt from
   the records if missing or damaged: the JSON records stay the only truth. Inputs seen (for
   de-duplication) are kept there too. The summary tables and the index are streamed from it
@@ -820,9 +820,9 @@ def _figures_exist(out_dir: Path, key: str, figure_format: str) -> bool:
     return all(object_path(out_dir, key, x).exists() for x in suffixes)
 
 
-def _unwritable(out_dir, exc: OSError) -> BatchError:
+def _unwritable(out_dir, exc: Exception) -> BatchError:
     """The one-line error for an output folder that stopped taking writes."""
-    return BatchError(f"{out_dir}: output folder cannot be written ({exc.strerror or exc})")
+    return BatchError(f"{out_dir}: output folder cannot be written ({getattr(exc, 'strerror', None) or exc})")
 
 
 def _update_hands(ctx: _Context, keys: list[str], hands: dict[str, dict]) -> list[dict]:

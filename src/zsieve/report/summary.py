@@ -362,12 +362,16 @@ def rebuild_summary(out_dir: str | os.PathLike, meta: dict[str, Any] | None = No
         cat.sync()
         cat.commit()
         write_summary(out_dir, cat.rows(), meta, presorted=True)
+        if cat.in_memory:  # the folder would not take the catalogue: the rows as a list
+            return list(cat.rows())
     return StoredRows(out_dir)
 
 
 # ------------------------------------------------------------------ the catalogue (a cache)
-#: File name of the catalogue inside an output folder (hidden: inputs and readers never see it).
-CATALOGUE_NAME = ".zsieve-catalogue.sqlite"
+#: File name of the catalogue inside an output folder: a cache, safe to delete (the next run or
+#: :func:`rebuild_summary` fills it again from the records). Not hidden: a hidden file in ``DIR``
+#: would pass for a temporary left by a killed writer.
+CATALOGUE_NAME = "zsieve-cache.sqlite"
 _SCHEMA_VERSION = 1
 #: Key of the resume facts a worker attaches to a row (taken off by :meth:`Catalogue.put`).
 FACTS_KEY = "_facts"
@@ -453,6 +457,7 @@ class Catalogue:
     def __init__(self, out_dir: str | os.PathLike):
         self.out_dir = Path(out_dir)
         self.path = self.out_dir / CATALOGUE_NAME
+        self.in_memory = False
         self.changes = 0
         self._changes_counted = 0
         self.run = 0
@@ -460,21 +465,24 @@ class Catalogue:
         self.con = self._open()
 
     # ---- opening, repair
-    def _connect(self):
+    def _connect(self, where=None):
         import sqlite3
 
-        con = sqlite3.connect(self.path, timeout=60.0)
-        con.execute("PRAGMA synchronous=NORMAL")
-        version = con.execute("PRAGMA user_version").fetchone()[0]
-        tables = con.execute("SELECT count(*) FROM sqlite_master").fetchone()[0]
-        if version == _SCHEMA_VERSION and tables:
-            return con  # opening an existing catalogue writes nothing (a run may be writing it)
-        if tables:
+        con = sqlite3.connect(where or self.path, timeout=60.0)
+        try:
+            con.execute("PRAGMA synchronous=NORMAL")
+            version = con.execute("PRAGMA user_version").fetchone()[0]
+            tables = con.execute("SELECT count(*) FROM sqlite_master").fetchone()[0]
+            if version == _SCHEMA_VERSION and tables:
+                return con  # opening an existing catalogue writes nothing (a run may be writing it)
+            if tables:
+                raise sqlite3.DatabaseError(f"catalogue version {version}, not {_SCHEMA_VERSION}")
+            con.executescript(_SCHEMA)
+            con.execute(f"PRAGMA user_version={_SCHEMA_VERSION}")
+            con.commit()
+        except BaseException:
             con.close()
-            raise sqlite3.DatabaseError(f"catalogue version {version}, not {_SCHEMA_VERSION}")
-        con.executescript(_SCHEMA)
-        con.execute(f"PRAGMA user_version={_SCHEMA_VERSION}")
-        con.commit()
+            raise
         return con
 
     def _open(self):
@@ -486,12 +494,20 @@ class Catalogue:
             if "locked" in str(exc) or "busy" in str(exc):
                 raise
             self._discard(exc)
-            return self._connect()
         except sqlite3.DatabaseError as exc:
             self._discard(exc)
+        try:
             return self._connect()
+        except sqlite3.OperationalError as exc:  # the folder takes no database (full, quota, odd file system)
+            if "locked" in str(exc) or "busy" in str(exc):
+                raise
+            log.warning("catalogue cannot be kept in %s (%s); keeping it in memory for this run", self.out_dir, exc)
+            self.in_memory = True
+            return self._connect(":memory:")
 
     def _discard(self, exc) -> None:
+        if self.in_memory:
+            return
         log.warning("catalogue %s unusable (%s); rebuilding it from the records", self.path, exc)
         for suffix in ("", "-journal", "-wal", "-shm"):
             try:
@@ -507,7 +523,7 @@ class Catalogue:
             self.con.close()
         finally:
             self._discard(sqlite3.DatabaseError("asked to rebuild"))
-        self.con = self._connect()
+        self.con = self._connect(":memory:" if self.in_memory else None)
         self.sync()
 
     def close(self) -> None:
