@@ -560,13 +560,16 @@ def _doublet_evidence(best, rows, prep, sig_inst) -> dict:
 def _forest_veto(uniq, prep, sig_inst, max_excess: float = 3.0):
     """Drop readings that the lines which must come with them refute: Ly-alpha at z > 2 whose
     forest is absent (:func:`forest_test` excess above ``max_excess``), and emission-galaxy
-    readings with H-beta but without the H-alpha that case-B recombination requires
+    readings with H-beta but no fitted H-alpha where case-B recombination requires one
     (:func:`balmer_test` deficit above ``max_excess``). Returns the kept candidates and a
     record of the dropped ones. All kept if every candidate would go."""
     keep, gone = [], []
     for f, s in uniq:
         names = [f.model.ls.names[l] for l in f.active_lines]
-        if f.cls == "emission-galaxy" and "H-beta" in names:
+        # only for a reading resting on one or two lines with H-alpha missing from the fit: a
+        # fitted H-alpha, even weaker than case B (flux calibration, blends), supports it, and a
+        # pattern of three or more lines outweighs one absent companion
+        if f.cls == "emission-galaxy" and "H-beta" in names and "H-alpha" not in names and len(names) <= 2:
             ls = f.model.ls
             sv = float(np.hypot(sig_inst, f.width_kms))  # the model's narrow-line velocity sigma
             hb = ls.wave[ls.names.index("H-beta")]
