@@ -26,7 +26,7 @@ from pathlib import Path
 from typing import Any, Iterable, Iterator
 from urllib.parse import quote
 
-from .atomic import write_atomic
+from .atomic import open_atomic, write_atomic
 from .record import OBJECTS, is_key
 
 __all__ = ["render_index", "write_index", "existing_outputs"]
@@ -244,7 +244,7 @@ def write_index(out_dir: str | os.PathLike, rows: Iterable[dict[str, Any]], *, t
     those are streamed to the file in order, with the outputs the catalogue knows of, so the
     page of a run of any size is written in bounded memory.
     """
-    from .summary import open_atomic
+
 
     out_dir = Path(out_dir)
     title = title or f"zsieve results: {out_dir.name}"

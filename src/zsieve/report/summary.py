@@ -27,7 +27,6 @@ Examples
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import io
 import json
@@ -40,7 +39,7 @@ from pathlib import Path
 from typing import Any, Iterable, Iterator
 
 from ..result import to_jsonable
-from .atomic import PART_SUFFIX
+from .atomic import open_atomic
 from .record import OBJECTS, is_key, read_record
 
 __all__ = ["COLUMNS", "row_from_record", "write_summary", "rebuild_summary", "clean_text", "tally", "Catalogue",
@@ -212,38 +211,6 @@ def build_table(rows: Iterable[dict[str, Any]], meta: dict[str, Any] | None = No
 # ------------------------------------------------------------------ streamed, atomic writers
 #: Rows formatted per astropy call when the tables are streamed (memory per chunk, not per run).
 CHUNK_ROWS = 2000
-
-
-@contextlib.contextmanager
-def open_atomic(path: str | os.PathLike) -> Iterator[Any]:
-    """A text file to write in pieces that replaces ``path`` in one step when the block ends.
-
-    The streamed counterpart of :func:`zsieve.report.atomic.write_atomic` (same temporary-file
-    naming, so :func:`~zsieve.report.atomic.remove_stale_parts` clears what a killed writer
-    leaves): data go to a hidden temporary file beside ``path``, which is synced and renamed
-    over ``path`` only if the block finishes; on any error it is removed and ``path`` is untouched.
-
-    >>> import tempfile
-    >>> d = tempfile.mkdtemp()
-    >>> with open_atomic(os.path.join(d, "t.txt")) as fh:
-    ...     _ = fh.write("a"); _ = fh.write("b")
-    >>> open(os.path.join(d, "t.txt")).read(), os.listdir(d)
-    ('ab', ['t.txt'])
-    """
-    import tempfile
-
-    path = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name[:80]}.", suffix=PART_SUFFIX, dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            yield fh
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, 0o644)
-        os.replace(tmp, path)  # from here on ``tmp`` names nothing
-    finally:
-        if os.path.lexists(tmp):  # the block or the writes failed: the destination is untouched
-            os.unlink(tmp)
 
 
 def _table_text(rows: list[dict[str, Any]], meta, fmt: str) -> str:
