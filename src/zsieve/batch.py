@@ -231,7 +231,7 @@ class BatchSettings:
     def config_dict(self) -> dict[str, Any]:
         cfg = self.config
         if cfg is None:
-            from .engine.measure import MeasureConfig
+            from .engine.config import MeasureConfig
 
             cfg = MeasureConfig()
         return to_jsonable(dataclasses.asdict(cfg))
@@ -591,7 +591,7 @@ def run_batch(paths: Iterable[str], out_dir: str | os.PathLike, settings: BatchS
 
     config_dict = settings.config_dict()
     if settings.config is None:
-        from .engine.measure import MeasureConfig
+        from .engine.config import MeasureConfig
 
         settings = dataclasses.replace(settings, config=MeasureConfig())
     try:

@@ -159,7 +159,7 @@ def options_from(args) -> dict:
 
 def _settings(opts: dict):
     from ..batch import BatchSettings
-    from ..engine.measure import MeasureConfig
+    from ..engine.config import MeasureConfig
 
     cfg = {}
     if opts["z_min"] is not None:
