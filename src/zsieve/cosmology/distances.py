@@ -38,7 +38,7 @@ import math
 import numpy as np
 
 from .models import CosmologyError, cosmology_record, finite_number, get_cosmology
-from .uncertainty import GRID_THRESHOLD, draw_z_samples, interpolate_on_grid, summarise
+from .uncertainty import draw_z_samples, summarise
 from .velocities import (
     C_KMS,
     LABEL_CZ,
@@ -123,16 +123,62 @@ def _core(z: np.ndarray, cosmo) -> dict:
     return out
 
 
+#: Nodes and weights of the Gauss-Legendre rule applied between consecutive redshifts.
+_GL_NODES, _GL_WEIGHTS = np.polynomial.legendre.leggauss(8)
+#: Longest step in z of the cumulative quadrature (extra nodes are added where samples are sparse).
+_MAX_STEP = 0.05
+
+
+def cumulative_integral(z_sorted: np.ndarray, integrand) -> np.ndarray:
+    """``integral_0^z integrand(x) dx`` at every ``z`` of a sorted array of distinct z >= 0.
+
+    One vectorised pass: 8-point Gauss-Legendre on each interval between consecutive nodes (the
+    z themselves plus a grid of step <= ``_MAX_STEP``), summed cumulatively; ``integrand`` is
+    called once, on all nodes. For the smooth FLRW integrands this agrees with adaptive
+    quadrature to ~1e-12 relative.
+
+    >>> out = cumulative_integral(np.array([0.5, 1.0, 2.0]), np.exp)
+    >>> bool(np.allclose(out, np.exp([0.5, 1.0, 2.0]) - 1, rtol=1e-13))
+    True
+    """
+    z_sorted = np.asarray(z_sorted, dtype=float)
+    if z_sorted.size == 0:
+        return z_sorted.copy()
+    top = float(z_sorted[-1])
+    grid = np.union1d(np.concatenate(([0.0], z_sorted)), np.linspace(0.0, top, int(np.ceil(top / _MAX_STEP)) + 1))
+    half = 0.5 * np.diff(grid)
+    mid = 0.5 * (grid[1:] + grid[:-1])
+    x = mid[:, None] + half[:, None] * _GL_NODES
+    vals = np.asarray(integrand(x.ravel()), dtype=float).reshape(x.shape)
+    cum = np.concatenate(([0.0], np.cumsum(half * (vals @ _GL_WEIGHTS))))
+    return cum[np.searchsorted(grid, z_sorted)]
+
+
 def _core_fast(z: np.ndarray, cosmo) -> dict:
-    """As :func:`_core`, through a fine-grid spline when there are many distinct redshifts."""
+    """As :func:`_core`, for many redshifts at once (bootstrap samples): one cumulative
+    quadrature of astropy's own integrands (``inv_efunc``, ``lookback_time_integrand``) over
+    the sorted distinct z instead of one adaptive integral per z. The age is age(0) minus the
+    lookback time, and D_M follows from D_C and Omega_k (Hogg 1999, eq. 16)."""
     z = np.asarray(z, dtype=float)
-    ok = z >= 0
-    if np.unique(z[ok]).size <= GRID_THRESHOLD:
-        return _core(z, cosmo)
     out = {k: np.full(z.shape, np.nan) for k in ("dc", "dm", "lookback", "age")}
-    interp = interpolate_on_grid(lambda g: _core(g, cosmo), z[ok])
-    for key, val in interp.items():
-        out[key][ok] = val
+    ok = z >= 0
+    if not ok.any():
+        return out
+    uz, where = np.unique(z[ok], return_inverse=True)
+    dh = float(cosmo.hubble_distance.to_value("Mpc"))
+    th = float(cosmo.hubble_time.to_value("Gyr"))
+    dc = dh * cumulative_integral(uz, lambda x: cosmo.inv_efunc(x))
+    lookback = th * cumulative_integral(uz, lambda x: cosmo.lookback_time_integrand(x))
+    ok0 = float(cosmo.Ok0)
+    if ok0 > 0:
+        dm = dh / np.sqrt(ok0) * np.sinh(np.sqrt(ok0) * dc / dh)
+    elif ok0 < 0:
+        dm = dh / np.sqrt(-ok0) * np.sin(np.sqrt(-ok0) * dc / dh)
+    else:
+        dm = dc
+    age0 = float(cosmo.age(0).to_value("Gyr"))
+    for key, val in (("dc", dc), ("dm", dm), ("lookback", lookback), ("age", age0 - lookback)):
+        out[key][ok] = val[where]
     return out
 
 
