@@ -637,8 +637,10 @@ def _attach_xcorr(res, xc):
     curves = xc["curves"]
     best_cls = res.template if res.template in curves else next(iter(curves))
     z, c = curves[best_cls]
-    res.extra["xcorr"] = {"class": best_cls, "z": [float(v) for v in np.asarray(z)],
-                          "r": [float(v) for v in np.asarray(c)]}
+    # the curve is for display (figure, refit window): z to 1e-6 (a tenth of a ln-lambda pixel)
+    # and the correlation to 1e-4 keep it exact to the eye and make the record 3x smaller
+    res.extra["xcorr"] = {"class": best_cls, "z": np.round(np.asarray(z, dtype=float), 6).tolist(),
+                          "r": np.round(np.asarray(c, dtype=float), 4).tolist()}
     if xc["peaks"]:
         res.extra["xcorr_peaks"] = [dict(z=p.z, r_tdr=p.r_tdr, template=p.template_class) for p in xc["peaks"][:8]]
 

@@ -126,7 +126,41 @@ def write_record(out_dir: str | os.PathLike, key: str, record: dict[str, Any]) -
     """Write one record (a ``FitResult.to_dict()``) as ``DIR/objects/<key>.json`` atomically."""
     path = object_path(out_dir, key, ".json")
     path.parent.mkdir(parents=True, exist_ok=True)
-    return write_atomic(path, json.dumps(record, indent=1, ensure_ascii=False, allow_nan=False))
+    return write_atomic(path, record_json(record))
+
+
+_ENCODE = json.JSONEncoder(ensure_ascii=False, allow_nan=False).encode  # no indent: the C encoder
+
+
+def record_json(record: dict[str, Any]) -> str:
+    """A record as JSON text: one top-level field per line, and one entry per line in lists of
+    objects (candidates, lines, features); everything else compact.
+
+    The layout keeps records readable with a text editor and a diff, while the encoding itself is
+    the standard library's C encoder (an indented dump runs the pure-Python encoder: 13 ms of
+    every object, a sixth of the engine's time, for records with bootstrap samples and
+    correlation curves).
+
+    >>> print(record_json({"z": 0.5, "lines": [{"name": "H-alpha"}, {"name": "[N II] 6585"}], "flags": []}))
+    {
+     "z": 0.5,
+     "lines": [
+      {"name": "H-alpha"},
+      {"name": "[N II] 6585"}
+     ],
+     "flags": []
+    }
+    >>> json.loads(record_json({"a": [1.5, None]}))
+    {'a': [1.5, None]}
+    """
+    parts = []
+    for k, v in record.items():
+        if isinstance(v, list) and v and all(isinstance(e, dict) for e in v):
+            body = "[\n  " + ",\n  ".join(_ENCODE(e) for e in v) + "\n ]"
+        else:
+            body = _ENCODE(v)
+        parts.append(f" {_ENCODE(str(k))}: {body}")
+    return "{\n" + ",\n".join(parts) + "\n}" if parts else "{}"
 
 
 def read_record(path: str | os.PathLike) -> dict[str, Any] | None:
