@@ -14,12 +14,16 @@ configuration runs in a fresh Python process so that its peak memory is its own:
 * ``dask1x2``: one Dask worker with two threads (are two threads in one process as good as two
   processes? numpy's FFTs release the GIL only part of the time);
 * ``dask2-small`` / ``jobs2-small``: ``local:2`` / 2 local processes on the first tenth of the
-  files, for the client's memory growth from the small to the full set.
+  files, for the client's memory growth from the small to the full set;
+* ``dask2ext`` / ``dask2ext-small``: as on a cluster, a ``dask scheduler`` process and a
+  ``dask worker --nworkers 2 --nthreads 1`` process of their own, the client connecting through
+  the scheduler file: the client's memory is then zsieve's alone (in a LocalCluster the
+  scheduler, whose task records grow with the number of tasks, lives in the client process).
 
 Printed per configuration: wall time of the batch (cluster start-up apart), spectra per second,
 the ratio to ``jobs1``, the client's peak resident memory (``VmHWM`` of /proc/self/status; for a
-LocalCluster the scheduler runs inside the client process and is included) and the largest
-worker's peak (Dask workers: read on each worker at the end; local processes: the largest
+LocalCluster the scheduler runs inside the client process and is included), the scheduler's peak
+(Dask runs; the same process as the client for a LocalCluster) and the largest worker's peak (Dask workers: read on each worker at the end; local processes: the largest
 child, ``getrusage(RUSAGE_CHILDREN)``). Figures are off; the seed is fixed.
 """
 
@@ -52,16 +56,42 @@ def main():
     conf = json.loads(sys.argv[1])
     s = BatchSettings(config=MeasureConfig(n_resamples=conf["resamples"], seed=1), figures=False,
                       progress=False, jobs=conf.get("jobs", 1))
-    out = {"startup_s": 0.0, "worker_peak_kb": None}
+    out = {"startup_s": 0.0, "worker_peak_kb": None, "scheduler_peak_kb": None}
     if conf.get("workers"):
         from zsieve import cluster
         t0 = time.perf_counter()
-        with cluster.connect(f"local:{conf['workers']}", threads_per_worker=conf.get("threads", 1)) as client:
-            out["startup_s"] = time.perf_counter() - t0
-            t0 = time.perf_counter()
-            summary = cluster.run([conf["data"]], conf["out"], s, scheduler=client)
-            out["elapsed_s"] = time.perf_counter() - t0
-            out["worker_peak_kb"] = max(client.run(vmhwm_kb).values())
+        procs = []
+        if conf.get("external"):
+            # a scheduler and a worker command of their own, as on a cluster; the client
+            # (this process) connects through the scheduler file
+            import os, subprocess
+            sfile = conf["out"] + ".scheduler.json"
+            if os.path.exists(sfile):
+                os.unlink(sfile)
+            quiet = dict(stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+            procs.append(subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_scheduler", "--host",
+                                           "127.0.0.1", "--port", "0", "--no-dashboard", "--scheduler-file", sfile], **quiet))
+            while not os.path.exists(sfile):
+                time.sleep(0.1)
+            procs.append(subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_worker", "--scheduler-file", sfile,
+                                           "--nworkers", str(conf["workers"]), "--nthreads", str(conf.get("threads", 1)),
+                                           "--no-dashboard"], **quiet))
+            target = sfile
+        else:
+            target = f"local:{conf['workers']}"
+        try:
+            with cluster.connect(target, threads_per_worker=conf.get("threads", 1)) as client:
+                client.wait_for_workers(conf["workers"], timeout=120)
+                out["startup_s"] = time.perf_counter() - t0
+                t0 = time.perf_counter()
+                summary = cluster.run([conf["data"]], conf["out"], s, scheduler=client)
+                out["elapsed_s"] = time.perf_counter() - t0
+                out["worker_peak_kb"] = max(client.run(vmhwm_kb).values())
+                out["scheduler_peak_kb"] = client.run_on_scheduler(vmhwm_kb)
+        finally:
+            for p in reversed(procs):
+                p.terminate()
+                p.wait(timeout=60)
     else:
         t0 = time.perf_counter()
         summary = run_batch([conf["data"]], conf["out"], s)
@@ -85,6 +115,8 @@ CONFIGS = {
     "dask1x2": {"workers": 1, "threads": 2},
     "dask2-small": {"workers": 2, "small": True},
     "jobs2-small": {"jobs": 2, "small": True},
+    "dask2ext": {"workers": 2, "external": True},
+    "dask2ext-small": {"workers": 2, "external": True, "small": True},
 }
 
 
@@ -146,21 +178,28 @@ def main(argv=None) -> int:
             print(f"  {name:12s} done in {r['elapsed_s']:.1f} s", flush=True)
         base = results.get("jobs1")
         print()
-        print(f"{'run':12s} {'spectra':>8s} {'start s':>8s} {'batch s':>8s} {'spec/s':>8s} {'vs jobs1':>8s} "
-              f"{'client MB':>10s} {'worker MB':>10s} {'failed':>6s}")
+        print(f"{'run':14s} {'spectra':>8s} {'start s':>8s} {'batch s':>8s} {'spec/s':>8s} {'vs jobs1':>8s} "
+              f"{'client MB':>10s} {'sched MB':>9s} {'worker MB':>10s} {'failed':>6s}")
         for name, r in results.items():
             rate = r["rows"] / r["elapsed_s"]
             ratio = f"{rate / (base['rows'] / base['elapsed_s']):.2f}" if base else "-"
             wk = f"{r['worker_peak_kb'] / 1024:.0f}" if r["worker_peak_kb"] else "-"
-            print(f"{name:12s} {r['rows']:8d} {r['startup_s']:8.1f} {r['elapsed_s']:8.1f} {rate:8.2f} {ratio:>8s} "
-                  f"{r['client_peak_kb'] / 1024:10.0f} {wk:>10s} {r['failed']:6d}")
+            sk = f"{r['scheduler_peak_kb'] / 1024:.0f}" if r.get("scheduler_peak_kb") else "-"
+            print(f"{name:14s} {r['rows']:8d} {r['startup_s']:8.1f} {r['elapsed_s']:8.1f} {rate:8.2f} {ratio:>8s} "
+                  f"{r['client_peak_kb'] / 1024:10.0f} {sk:>9s} {wk:>10s} {r['failed']:6d}")
         print()
-        for big, little, what in (("dask2", "dask2-small", "Dask local:2"), ("jobs2", "jobs2-small", "2 local processes")):
+        for big, little, what in (("dask2", "dask2-small", "Dask local:2 (scheduler inside the client)"),
+                                  ("dask2ext", "dask2ext-small", "Dask scheduler and workers of their own"),
+                                  ("jobs2", "jobs2-small", "2 local processes")):
             if big in results and little in results:
                 a, b = results[little], results[big]
                 print(f"client peak memory, {a['rows']} -> {b['rows']} spectra, {what}: "
                       f"{a['client_peak_kb'] / 1024:.0f} -> {b['client_peak_kb'] / 1024:.0f} MB "
                       f"({100 * (b['client_peak_kb'] / a['client_peak_kb'] - 1):+.1f}%)")
+                if big == "dask2ext" and a.get("scheduler_peak_kb") and b.get("scheduler_peak_kb"):
+                    print(f"  the separate scheduler's peak: {a['scheduler_peak_kb'] / 1024:.0f} -> "
+                          f"{b['scheduler_peak_kb'] / 1024:.0f} MB "
+                          f"({100 * (b['scheduler_peak_kb'] / a['scheduler_peak_kb'] - 1):+.1f}%; Dask's own task records)")
         print(f"load average {os.getloadavg()[0]:.1f} at the end (other work on the machine slows every run alike)")
     finally:
         if not args.keep:
