@@ -17,7 +17,7 @@ from astropy.cosmology import FlatLambdaCDM, FlatwCDM, LambdaCDM, Planck18, w0wa
 
 from zsieve.cosmology import CosmologyError, describe, get_cosmology, quantities
 from zsieve.cosmology.distances import _arrays
-from zsieve.cosmology.uncertainty import draw_z_samples, interpolate_on_grid
+from zsieve.cosmology.uncertainty import draw_z_samples
 
 C_KMS = const.c.to_value("km/s")
 ZS = np.array([0.005, 0.1, 0.5, 1.0, 1.42, 3.0, 6.5])
@@ -251,11 +251,6 @@ def test_sample_quadrature_matches_direct_astropy(lo, hi, cosmo):
         np.testing.assert_allclose(fast[key], ref, rtol=1e-8, atol=1e-9, err_msg=key)
     ok = z > 0
     np.testing.assert_allclose(fast["distance_modulus_mag"][ok], 5 * np.log10(dl[ok]) + 25, rtol=1e-6)
-
-
-def test_interpolation_rejects_nothing_smooth():
-    out = interpolate_on_grid(lambda x: {"f": np.sin(x)}, np.linspace(0.0, 3.0, 50), n_grid=200)
-    np.testing.assert_allclose(out["f"], np.sin(np.linspace(0.0, 3.0, 50)), rtol=1e-6, atol=1e-9)
 
 
 def test_gaussian_draws_truncated_above_minus_one():

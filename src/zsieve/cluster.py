@@ -74,6 +74,21 @@ def _distributed():
     return distributed
 
 
+def _worker_malloc_defaults():
+    """Dask config under which the nannies of a LocalCluster leave glibc's malloc at its defaults.
+
+    Dask's nanny sets ``MALLOC_TRIM_THRESHOLD_=65536`` for the workers it spawns (to hand freed
+    memory back to the system). A fixed threshold also switches off glibc's adaptive mmap
+    threshold, so every large temporary array of the engine (the bootstrap's resample matrices,
+    megabytes each) is a fresh ``mmap`` whose pages fault in again: measured on 40 mocks, one
+    worker, 200 resamples: 3.0-3.1 s with the variable, 2.6 s without it, 2.4-2.6 s in a plain
+    process. Setting a ``pre-spawn-environ`` entry to None unsets it (Dask's documented override).
+    """
+    import dask
+
+    return dask.config.set({"distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None})
+
+
 def parse_scheduler(text: str) -> tuple[str, Any]:
     """``('local', n_workers)`` for ``local`` / ``local:N``, else ``('address', text)``.
 
@@ -138,6 +153,7 @@ def connect(scheduler, *, threads_per_worker: int = 1, memory_limit: str | int =
                 # the scheduler's small health endpoint falls back to a random local port
                 # when 8787 is taken; that is expected here and not worth a warning
                 warnings.filterwarnings("ignore", message=".*[Pp]ort .* already in use.*")
+                stack.enter_context(_worker_malloc_defaults())
                 cluster = stack.enter_context(distributed.LocalCluster(
                     n_workers=int(value), threads_per_worker=int(threads_per_worker), processes=True,
                     host="127.0.0.1", dashboard_address=None, memory_limit=memory_limit,

@@ -14,9 +14,11 @@ configuration runs in a fresh Python process so that its peak memory is its own:
 * ``dask1x2``: one Dask worker with two threads (are two threads in one process as good as two
   processes? numpy's FFTs release the GIL only part of the time);
 * ``dask2-small`` / ``jobs2-small``: ``local:2`` / 2 local processes on the first tenth of the
-  files, for the client's memory growth from the small to the full set;
+  files (``--small N``: the first N), for the client's memory growth from the small to the full
+  set (the summary is formatted 2,000 rows at a time, so sets smaller than that use less);
 * ``dask2ext`` / ``dask2ext-small``: as on a cluster, a ``dask scheduler`` process and a
-  ``dask worker --nworkers 2 --nthreads 1`` process of their own, the client connecting through
+  ``dask worker --nworkers 2 --nthreads 1`` process of their own (with the worker-node Dask
+  configuration of the README, :data:`DASK_WORKER_YAML`), the client connecting through
   the scheduler file: the client's memory is then zsieve's alone (in a LocalCluster the
   scheduler, whose task records grow with the number of tasks, lives in the client process).
 
@@ -75,7 +77,7 @@ def main():
                 time.sleep(0.1)
             procs.append(subprocess.Popen([sys.executable, "-m", "distributed.cli.dask_worker", "--scheduler-file", sfile,
                                            "--nworkers", str(conf["workers"]), "--nthreads", str(conf.get("threads", 1)),
-                                           "--no-dashboard"], **quiet))
+                                           "--no-dashboard"], env=dict(os.environ, DASK_CONFIG=conf["dask_config"]), **quiet))
             target = sfile
         else:
             target = f"local:{conf['workers']}"
@@ -120,6 +122,14 @@ CONFIGS = {
 }
 
 
+#: The worker-node Dask configuration of the README's cluster section.
+DASK_WORKER_YAML = """distributed:
+  nanny:
+    pre-spawn-environ:
+      MALLOC_TRIM_THRESHOLD_: null
+"""
+
+
 def make_set(folder: str, n: int, seed: int) -> None:
     from zsieve.io import write_fits_table
     from zsieve.simulate import mock_set
@@ -137,6 +147,11 @@ def run_config(name: str, data: str, small: str, work: str, resamples: int) -> d
     conf.update(data=small if conf.pop("small", False) else data, out=os.path.join(work, f"out-{name}"),
                 resamples=resamples)
     env = dict(os.environ, MPLBACKEND="Agg")
+    # the Dask configuration the README gives for worker nodes (glibc's malloc left adaptive)
+    conf["dask_config"] = os.path.join(work, "dask-config")
+    os.makedirs(conf["dask_config"], exist_ok=True)
+    with open(os.path.join(conf["dask_config"], "zsieve.yaml"), "w") as fh:
+        fh.write(DASK_WORKER_YAML)
     script = os.path.join(work, "child.py")
     if not os.path.exists(script):
         with open(script, "w") as fh:
@@ -155,6 +170,8 @@ def main(argv=None) -> int:
     ap.add_argument("--resamples", type=int, default=200, help="bootstrap resamples (engine default 200)")
     ap.add_argument("--configs", nargs="+", default=list(CONFIGS), choices=list(CONFIGS))
     ap.add_argument("--seed", type=int, default=2026)
+    ap.add_argument("--small", type=int, default=None,
+                    help="size of the small set of the *-small runs (default: a tenth of --n)")
     ap.add_argument("--keep", metavar="DIR", help="work in DIR and keep it (default: a temporary folder)")
     args = ap.parse_args(argv)
     n = 200 if args.quick else args.n
@@ -166,7 +183,7 @@ def main(argv=None) -> int:
             make_set(data, n, args.seed)
         if not os.path.isdir(small):  # the first tenth, as hard links
             os.makedirs(small)
-            for name in sorted(os.listdir(data))[: max(1, n // 10)]:
+            for name in sorted(os.listdir(data))[: max(1, args.small or n // 10)]:
                 os.link(os.path.join(data, name), os.path.join(small, name))
         print(f"{n} mock spectra (seed {args.seed}) written in {time.perf_counter() - t0:.1f} s; "
               f"resamples {args.resamples}, figures off, {os.cpu_count()} cores, "

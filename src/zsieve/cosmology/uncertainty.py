@@ -8,10 +8,8 @@ stay positive). Each quantity is evaluated at every sample and summarised by its
 their distance, which is the standard deviation for a Gaussian and is not dragged about by a
 few outlying bootstrap samples.
 
-Evaluating astropy's integrals at thousands of samples is slow for models with massive
-neutrinos, so :func:`interpolate_on_grid` evaluates a function on a fine grid in ln(1+z) over
-the range of the samples and interpolates it with a cubic spline; tests check it against the
-direct evaluation to 1e-6 relative.
+The samples' distances come from one cumulative quadrature of astropy's own integrands
+(:mod:`zsieve.cosmology.distances`), not from one adaptive integral per sample.
 
 Examples
 --------
@@ -29,14 +27,9 @@ import logging
 
 import numpy as np
 
-__all__ = ["draw_z_samples", "summarise", "interpolate_on_grid", "GRID_POINTS", "GRID_THRESHOLD"]
+__all__ = ["draw_z_samples", "summarise"]
 
 log = logging.getLogger(__name__)
-
-#: Points of the interpolation grid (uniform in ln(1+z)).
-GRID_POINTS = 256
-#: Use the grid only when there are more distinct samples than this; below it, evaluate directly.
-GRID_THRESHOLD = 300
 
 
 def draw_z_samples(z: float, sigma: float, n: int, seed=0) -> np.ndarray:
@@ -86,50 +79,3 @@ def summarise(values) -> dict:
         return {"p16": float("nan"), "p84": float("nan"), "err": float("nan"), "n_used": 0}
     p16, p84 = np.percentile(v, [16.0, 84.0])
     return {"p16": float(p16), "p84": float(p84), "err": float(0.5 * (p84 - p16)), "n_used": int(v.size)}
-
-
-def interpolate_on_grid(fn, z, n_grid: int = GRID_POINTS) -> dict:
-    """Evaluate ``fn`` at the redshifts ``z`` through a cubic spline on a grid in ln(1+z).
-
-    Parameters
-    ----------
-    fn : callable
-        ``fn(z_array) -> dict of float arrays`` (each the shape of its argument), smooth in z.
-    z : array_like
-        Redshifts, all finite and > -1.
-    n_grid : int
-        Grid points between ``min(z)`` and ``max(z)`` (both included exactly).
-
-    Returns
-    -------
-    dict
-        The same keys as ``fn`` returns, each an array of ``z``'s shape.
-
-    Examples
-    --------
-    >>> out = interpolate_on_grid(lambda x: {"sq": x**2}, np.array([0.1, 0.7, 2.0]), 64)
-    >>> [round(float(v), 6) for v in out["sq"]]
-    [0.01, 0.49, 4.0]
-    """
-    from scipy.interpolate import CubicSpline
-
-    z = np.asarray(z, dtype=float)
-    lo, hi = float(np.min(z)), float(np.max(z))
-    if not hi > lo:
-        return {k: np.broadcast_to(np.asarray(v, dtype=float), z.shape).copy() for k, v in fn(np.full(z.shape, lo)).items()}
-    x = np.linspace(np.log1p(lo), np.log1p(hi), int(n_grid))
-    grid = np.expm1(x)
-    grid[0], grid[-1] = lo, hi
-    x = np.log1p(grid)
-    values = fn(grid)
-    xz = np.log1p(z)
-    out = {}
-    for key, val in values.items():
-        val = np.asarray(val, dtype=float)
-        if not np.all(np.isfinite(val)):
-            # A function that is not finite on the grid cannot be splined; evaluate directly.
-            log.debug("grid interpolation of %s fell back to direct evaluation", key)
-            out[key] = np.asarray(fn(z)[key], dtype=float)
-            continue
-        out[key] = CubicSpline(x, val)(xz)
-    return out

@@ -198,27 +198,10 @@ class LineModel:
         D = np.bincount(self._eflat, dp, minlength=size).reshape(x.size, self.n_cols)
         return G, D
 
-    def design_many(self, zs, width_kms, broad_scale=1.0):
-        """:meth:`design` at many redshifts at once: array ``(len(zs), npix_window, n_cols)``."""
-        zs = np.asarray(zs, dtype=float)
-        size = self.x.size * self.n_cols
-        if self._eline.size == 0 or size == 0:
-            return np.zeros((zs.size, self.x.size, self.n_cols))
-        use, e = self._use, self._eline
-        base = self.centres(0.0)[use]
-        sv = self._sigma_v(width_kms, broad_scale)[use] / C_KMS
-        mu = (1 + zs)[:, None] * base[None, :]  # (nz, lines)
-        s = mu * sv[None, :]
-        u = (self._ex[None, :] - mu[:, e]) / s[:, e]
-        p = np.exp(-0.5 * u * u) * (self._coef[None, :] / (SQRT2PI * s))[:, e]
-        flat = (np.arange(zs.size) * size)[:, None] + self._eflat[None, :]
-        G = np.bincount(flat.ravel(), p.ravel(), minlength=zs.size * size)
-        return G.reshape(zs.size, self.x.size, self.n_cols)
-
     def model_derivs(self, z, width_kms, broad_scale, amps):
         """Derivatives of the model ``design(z, ...) @ amps`` by z, narrow width and broad scale.
 
-        The same sums as ``design(deriv=True)[1] @ amps`` and ``design_dwidth(...) @ amps``,
+        The same sums as ``design(deriv=True)[1] @ amps`` and the width derivatives of the columns,
         accumulated straight onto the pixels (one profile evaluation, no matrices).
         """
         n = self.x.size
@@ -245,31 +228,6 @@ class LineModel:
         pix = self._epix
         return (np.bincount(pix, dz, minlength=n), np.bincount(pix, dlns * dn[e], minlength=n),
                 np.bincount(pix, dlns * db[e], minlength=n))
-
-    def design_dwidth(self, z, width_kms, broad_scale=1.0):
-        """d(columns)/d(narrow width in km/s) and d/d(broad scale), analytic."""
-        use = self._use
-        ls = self.ls
-        mu = self.centres(z)[use]
-        sv = self._sigma_v(width_kms, broad_scale)[use]
-        s = mu * sv / C_KMS
-        size = self.x.size * self.n_cols
-        if self._eline.size == 0:
-            G = np.zeros((self.x.size, self.n_cols))
-            return G, G.copy()
-        e = self._eline
-        u = (self._ex - mu[e]) / s[e]
-        p = np.exp(-0.5 * u * u) * (self._coef / (SQRT2PI * s))[e]
-        dlns = (u * u - 1.0) * p  # d prof / d ln s
-        broad = ls.broad[use]
-        # d ln s / d width (narrow) and d ln s / d scale (broad)
-        dn = np.where(broad, 0.0, width_kms / np.maximum(sv * sv, 1e-12))
-        bw = ls.width_kms[use] / 2.3548
-        db = np.where(broad, broad_scale * bw * bw / np.maximum(sv * sv, 1e-12), 0.0)
-        f = self._eflat
-        dW = np.bincount(f, dlns * dn[e], minlength=size).reshape(self.x.size, self.n_cols)
-        dB = np.bincount(f, dlns * db[e], minlength=size).reshape(self.x.size, self.n_cols)
-        return dW, dB
 
     # ---- the normal equations straight from the (line, pixel) entries
     # The columns are sparse (each line covers only its own window), so G^T W G and G^T W r
@@ -367,20 +325,8 @@ class LineModel:
         a, gain = nnls_normal(F, b, start=start)
         return a, gain, self.model_vector(p, a)
 
-    def scan_gain(self, rr, zs, width_kms, broad_scale=1.0):
-        """``delta_chi2`` of the amplitude fit at each z of ``zs`` (the batched z scan)."""
-        zs = np.asarray(zs, dtype=float)
-        if self.n_cols == 0 or self._eline.size == 0:
-            return np.zeros(zs.size)
-        per = max(1, int(400_000 // max(1, self._pair_index()[0].size)))
-        out = []
-        for i in range(0, zs.size, per):  # chunks that keep the pair stack small
-            F, b = self.normal_equations(self._entry_profiles(zs[i:i + per], width_kms, broad_scale), rr)
-            out.append(nnls_gain_normal(F, b))
-        return np.concatenate(out)
-
     def scan_best(self, rr, zs, width_kms, broad_scale=1.0):
-        """``(index, delta_chi2)`` of the z in ``zs`` with the largest :meth:`scan_gain` (the
+        """``(index, delta_chi2)`` of the z in ``zs`` with the largest amplitude-fit gain (the
         first of equals), found without solving every constrained fit: the unconstrained gain
         bounds the non-negative one from above, so a z whose bound is below the best exact
         gain cannot win and is skipped."""
@@ -597,41 +543,6 @@ def nnls_gain_normal(F, b) -> np.ndarray:
     gain = np.einsum("ij,ij->i", a, b)
     for i in np.flatnonzero((a < 0).any(axis=1) | ~np.isfinite(gain)):  # constrained ones
         gain[i] = nnls_normal(F[i], b[i], start=a[i] > 0)[1]
-    return gain
-
-
-def nnls_gain_many(Gs, w, r) -> np.ndarray:
-    """``delta_chi2`` of :func:`nnls_weighted` for a stack of design matrices ``(nz, npix, k)``.
-
-    The normal equations of all problems are formed and solved together; where the
-    unconstrained solution is already non-negative it *is* the NNLS solution, and only the
-    others go through the (small, reduced) NNLS one by one.
-
-    >>> G = np.array([[1.0, 0.0], [1.0, 1.0], [0.0, 1.0]])
-    >>> r = np.array([1.0, 0.0, -1.0])
-    >>> bool(np.isclose(nnls_gain_many(np.stack([G, G]), np.ones(3), r)[0], nnls_weighted(G, np.ones(3), r)[1]))
-    True
-    """
-    nz, _, k = Gs.shape
-    if k == 0 or nz == 0:
-        return np.zeros(nz)
-    GwT = (Gs * w[None, :, None]).transpose(0, 2, 1)
-    F = GwT @ Gs
-    b = GwT @ r
-    ridge = 1e-12 * np.maximum(np.trace(F, axis1=1, axis2=2) / k, 1e-300)
-    try:
-        L = np.linalg.cholesky(F + ridge[:, None, None] * np.eye(k)[None])
-        c = np.linalg.solve(L, b[:, :, None])[:, :, 0]
-        a = np.linalg.solve(L.transpose(0, 2, 1), c[:, :, None])[:, :, 0]
-    except np.linalg.LinAlgError:
-        return np.array([nnls_weighted(G, w, r)[1] for G in Gs])
-    gain = np.einsum("ij,ij->i", c, c)
-    for i in np.flatnonzero((a < 0).any(axis=1) | ~np.isfinite(gain)):  # constrained ones
-        try:
-            _, rn = nnls(L[i].T, c[i], maxiter=20 * max(1, k))
-            gain[i] = float(c[i] @ c[i] - rn * rn)
-        except (RuntimeError, ValueError):
-            gain[i] = nnls_weighted(Gs[i], w, r)[1]
     return gain
 
 
