@@ -23,13 +23,9 @@ Examples
 
 from __future__ import annotations
 
-import logging
-
 import numpy as np
 
 __all__ = ["draw_z_samples", "summarise"]
-
-log = logging.getLogger(__name__)
 
 
 def draw_z_samples(z: float, sigma: float, n: int, seed=0) -> np.ndarray:
