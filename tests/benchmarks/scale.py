@@ -25,8 +25,9 @@ configuration runs in a fresh Python process so that its peak memory is its own:
 Printed per configuration: wall time of the batch (cluster start-up apart), spectra per second,
 the ratio to ``jobs1``, the client's peak resident memory (``VmHWM`` of /proc/self/status; for a
 LocalCluster the scheduler runs inside the client process and is included), the scheduler's peak
-(Dask runs; the same process as the client for a LocalCluster) and the largest worker's peak (Dask workers: read on each worker at the end; local processes: the largest
-child, ``getrusage(RUSAGE_CHILDREN)``). Figures are off; the seed is fixed.
+(Dask runs; the same process as the client for a LocalCluster) and the largest worker's peak
+(Dask workers: read on each worker at the end; local processes: the largest child,
+``getrusage(RUSAGE_CHILDREN)``). Figures are off; the seed is fixed.
 """
 
 from __future__ import annotations
@@ -149,11 +150,11 @@ def run_config(name: str, data: str, small: str, work: str, resamples: int) -> d
     env = dict(os.environ, MPLBACKEND="Agg")
     # the Dask configuration the README gives for worker nodes (glibc's malloc left adaptive)
     conf["dask_config"] = os.path.join(work, "dask-config")
-    os.makedirs(conf["dask_config"], exist_ok=True)
-    with open(os.path.join(conf["dask_config"], "zsieve.yaml"), "w") as fh:
-        fh.write(DASK_WORKER_YAML)
     script = os.path.join(work, "child.py")
     if not os.path.exists(script):
+        os.makedirs(conf["dask_config"], exist_ok=True)
+        with open(os.path.join(conf["dask_config"], "zsieve.yaml"), "w") as fh:
+            fh.write(DASK_WORKER_YAML)
         with open(script, "w") as fh:
             fh.write(_CHILD)
     proc = subprocess.run([sys.executable, script, json.dumps(conf)], capture_output=True, text=True, env=env)

@@ -137,9 +137,8 @@ def record_json(record: dict[str, Any]) -> str:
     objects (candidates, lines, features); everything else compact.
 
     The layout keeps records readable with a text editor and a diff, while the encoding itself is
-    the standard library's C encoder (an indented dump runs the pure-Python encoder: 13 ms of
-    every object, a sixth of the engine's time, for records with bootstrap samples and
-    correlation curves).
+    the standard library's C encoder (an indented dump runs the pure-Python encoder: 4.3 ms per
+    record of 100 mock objects with bootstrap samples and correlation curves, 2.5 ms this way).
 
     >>> print(record_json({"z": 0.5, "lines": [{"name": "H-alpha"}, {"name": "[N II] 6585"}], "flags": []}))
     {
