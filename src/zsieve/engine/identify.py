@@ -70,6 +70,12 @@ CLASS_TOLERANCE = {
     "star": 60.0 / C_KMS,
 }
 
+#: Classes whose lines have widths of their own, and the listed FWHM (km/s) above which a line
+#: is modelled with its listed width (times one fitted scale) instead of the shared narrow
+#: width: the broad lines of quasars; in stars the pressure-broadened Balmer lines and the
+#: G band, several times wider than the metal lines (common practice).
+BROAD_MIN_KMS = {"quasar": 1000.0, "star": 300.0}
+
 
 @dataclass
 class LineSet:
@@ -92,7 +98,8 @@ class LineSet:
 
     @property
     def broad(self) -> np.ndarray:
-        return self.width_kms > 1000.0
+        """Lines whose own listed width is modelled (one scale factor for all of them)."""
+        return self.width_kms > BROAD_MIN_KMS.get(self.cls, 1000.0)
 
     def leader(self) -> np.ndarray:
         """Index of the strongest member of each group."""
@@ -134,7 +141,7 @@ def build_linesets(table, classes) -> dict[str, LineSet]:
             gidx[i] = labels.setdefault(key, len(labels))
         ratio = np.where(ratio_all[sel] > 0, ratio_all[sel], 1.0)
         st = strength[sel]
-        width = width_all[sel] if cls == "quasar" else np.zeros(sel.size)
+        width = width_all[sel] if cls in BROAD_MIN_KMS else np.zeros(sel.size)
         offs = off_all[sel] if cls == "quasar" else np.zeros(sel.size)
         ls = LineSet(cls, [names_all[k] for k in sel], wave_all[sel],
                      np.where(kind_all[sel] == "absorption", -1, 1), gidx, ratio, st, width, offs)
