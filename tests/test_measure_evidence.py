@@ -5,6 +5,7 @@
 * Mean Ly-alpha forest transmission exp(-0.0018 (1+z)^3.92): Faucher-Giguere et al. 2008,
   ApJ 681, 831 (from memory); their measured tau_eff at z = 3 is about 0.36-0.40 (from memory).
 * Case-B H-alpha/H-beta = 2.86 (Osterbrock & Ferland 2006, from memory; common practice).
+* Composite quasar broad-line fluxes: Vanden Berk et al. 2001, AJ 122, 549 (from memory).
 * Birge ratio: chi2 of n values about their weighted mean has mean n - 1 (chi-square
   distribution, common practice).
 """
@@ -14,10 +15,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
-import pytest
 
 from zsieve.engine.evidence import (BALMER_CASE_B, balmer_test, birge_factor, doublet_delta_chi2,
-                                    forest_test, forest_transmission)
+                                    companion_test, forest_absent, forest_test, forest_transmission)
 from zsieve.engine.measure import DOUBLET_DCHI2, MeasureConfig, measure
 from zsieve.spectrum import Spectrum
 
@@ -152,3 +152,87 @@ def test_broad_line_quasar_near_z1_is_graded_on_its_lines():
     res = measure(spec, MeasureConfig(n_resamples=20, seed=1))
     assert abs(res.z - z) < 0.01 * (1 + z)
     assert res.grade in ("secure", "likely")
+
+
+def _thicket(rng, wave, z, mean_transmission):
+    """Narrow Ly-alpha absorbers (b = 30 km/s, optical depths from a power law; common practice)
+    blueward of Ly-alpha at ``z``, scaled to ``mean_transmission`` (bisection on one factor)."""
+    dv = C_KMS * math.log(10) * 1e-4
+    region = wave < 1215.67 * (1 + z)
+    tau0 = np.where(region & (rng.random(wave.size) < 0.5), rng.pareto(0.6, wave.size) + 0.1, 0.0)
+    k = np.exp(-0.5 * (np.arange(-4, 5) * dv / 30.0) ** 2)
+    shape = np.convolve(tau0, k, mode="same")
+    lo, hi = 0.0, 100.0
+    for _ in range(50):
+        mid = 0.5 * (lo + hi)
+        lo, hi = (mid, hi) if np.mean(np.exp(-mid * shape[region])) > mean_transmission else (lo, mid)
+    return np.where(region, np.exp(-lo * shape), 1.0)
+
+
+def test_forest_seen_by_its_lines_where_the_sightline_is_unusually_clear():
+    # One sightline's forest transmission scatters about the cosmic mean and rises close to
+    # the quasar (proximity effect; common practice): at z = 3.8 the mean is ~0.5
+    # (Faucher-Giguere 2008, from memory) but this sightline lets 0.8 through. Its narrow lines
+    # still roughen the spectrum pixel to pixel, so the forest is not absent; a bare
+    # continuum is.
+    rng = np.random.default_rng(11)
+    wave = _grid()
+    z = 3.8
+    cont = (wave / 6000.0) ** -1.5
+    ivar = np.full(wave.size, 1 / 0.03**2)
+    clear = forest_test(wave, cont * _thicket(rng, wave, z, 0.8) + rng.normal(0, 0.03, wave.size), ivar, z)
+    bare = forest_test(wave, cont + rng.normal(0, 0.03, wave.size), ivar, z)
+    assert clear["excess"] > 3.0  # the mean alone would call it absent
+    assert clear["rough_excess"] > 3.0
+    assert not forest_absent(clear)
+    assert abs(bare["rough_excess"]) < 3.0
+    assert abs(bare["rough_blue"] - 1.0) < 0.15  # pure noise: median d^2/var(d) of chi-square(1)
+    assert forest_absent(bare)
+    # the usual forest at the cosmic mean is not absent either
+    usual = forest_test(wave, cont * _thicket(rng, wave, z, float(forest_transmission(3.5)))
+                        + rng.normal(0, 0.03, wave.size), ivar, z)
+    assert not forest_absent(usual)
+
+
+# Relative broad-line fluxes of the SDSS composite quasar, Vanden Berk et al. 2001, AJ 122, 549
+# (from memory): Ly-alpha 100, C IV 25, C III] 16, Mg II 15; vacuum wavelengths NIST ASD (from
+# memory); broad-line FWHM ~4000-5000 km/s (common practice).
+COMPOSITE = {"Ly-alpha": (1215.67, 1.00), "C IV": (1549.06, 0.25), "C III]": (1908.73, 0.16),
+             "Mg II": (2798.75, 0.15)}
+
+
+def _broad(wave, centre, flux, fwhm_kms=4500.0):
+    return _gauss_flux(wave, centre, centre * fwhm_kms / 2.3548 / C_KMS, flux)
+
+
+def test_companion_test_accepts_composite_quasar_and_refutes_a_lone_bump():
+    rng = np.random.default_rng(12)
+    wave = _grid()
+    z = 2.3
+    cen = [w * (1 + z) for w, _ in COMPOSITE.values()]
+    sig = [c * 4500.0 / 2.3548 / C_KMS for c in cen]
+    st = [s for _, s in COMPOSITE.values()]
+    ivar = np.full(wave.size, 1 / 0.3**2)
+    quasar = sum(_broad(wave, c, 3000.0 * s) for c, s in zip(cen, st)) + rng.normal(0, 0.3, wave.size)
+    t = companion_test(wave, quasar, ivar, cen, sig, st)
+    assert t["deficit"] < 3.0
+    # C IV at half and C III] at a third of the composite's: quasars differ this much (Vanden Berk 2001)
+    odd = quasar - _broad(wave, cen[1], 0.5 * 3000.0 * st[1]) - _broad(wave, cen[2], 0.67 * 3000.0 * st[2])
+    assert companion_test(wave, odd, ivar, cen, sig, st)["deficit"] < 3.0
+    # the same Ly-alpha bump alone, as a continuum break's residual leaves it: C IV etc. missing
+    lone = _broad(wave, cen[0], 3000.0) + rng.normal(0, 0.3, wave.size)
+    t = companion_test(wave, lone, ivar, cen, sig, st)
+    assert t["lead"] == 0 and t["deficit"] > 3.0
+
+
+def test_lone_broad_bump_is_not_a_quasar_with_missing_lines():
+    # one broad bump at 6000 A: as C III] it needs C IV at 4870 A, as Mg II it needs C III] at
+    # 4090 A, as C IV it needs C III] at 7390 A (composite ratios, Vanden Berk 2001)
+    rng = np.random.default_rng(13)
+    wave = _grid()
+    f = 5.0 + _broad(wave, 6000.0, 1500.0)
+    spec = Spectrum(wave, f + rng.normal(0, 0.3, wave.size), np.full(wave.size, 0.3))
+    res = measure(spec, MeasureConfig(n_resamples=20, seed=1))
+    gone = [r for r in res.extra.get("rejected", []) if r["reason"] == "broad companion line missing"]
+    assert gone and all(r["deficit"] > 3.0 for r in gone)
+    assert res.grade in ("tentative", "none")

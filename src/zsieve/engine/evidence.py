@@ -46,7 +46,8 @@ import numpy as np
 
 from .prepare import C_KMS
 
-__all__ = ["OII_DOUBLET", "fixed_line_flux", "balmer_test", "BALMER_CASE_B", "doublet_delta_chi2", "forest_transmission", "forest_test", "birge_factor",
+__all__ = ["OII_DOUBLET", "fixed_line_flux", "balmer_test", "BALMER_CASE_B", "doublet_delta_chi2", "forest_transmission", "forest_test", "forest_absent",
+           "birge_factor", "companion_test", "COMPANION_ALLOWANCE",
            "LYA_REST", "FOREST_REST", "FOREST_RED_REST"]
 
 #: [O II] 3727.09 / 3729.88 vacuum rest wavelengths (NIST ASD; as in linelists/galaxy_emission.ecsv).
@@ -148,7 +149,8 @@ def forest_transmission(z) -> np.ndarray | float:
 
 
 def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
-    """Compare the mean flux of rest 1050-1180 A with that of rest 1270-1380 A for Ly-alpha at ``z``.
+    """Compare the mean flux of rest 1050-1180 A with that of rest 1270-1380 A for Ly-alpha at ``z``,
+    and the pixel-to-pixel roughness of the two ranges.
 
     Returns None where either range is not observed (fewer than ``min_pixels`` usable
     pixels). Otherwise a dict: ``ratio`` (blue mean / red mean, inverse-variance weighted),
@@ -156,7 +158,16 @@ def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
     and ``excess`` = (ratio - allowance * expected) / error, where the allowance 1.45 is the
     largest blue-to-red continuum rise of a plausible UV slope (f_lambda ~ lambda^-2.5 between
     the two ranges' centres; common practice for star-forming galaxies and quasars). ``excess``
-    > 3 means the forest is absent: evidence against Ly-alpha at ``z``.
+    > 3 means the mean flux is not depressed as the forest would depress it.
+
+    The forest is also a thicket of narrow absorption lines (common practice), so it roughens
+    the spectrum on the scale of a pixel whatever its mean transmission along one sightline
+    (which scatters about the cosmic mean, and rises near the quasar): ``rough_blue`` and
+    ``rough_red`` are the median of ``d^2 / var(d)`` over differences ``d`` of adjacent usable
+    pixels, divided by 0.4549 (the median of chi-square with one degree of freedom), so 1 for
+    noise about any smooth spectrum; ``rough_excess`` is ``rough_blue - rough_red`` over its
+    error (2.6 / sqrt(pairs) for each, measured on pure noise). ``rough_excess`` > 3 means the
+    forest's lines are seen. :func:`forest_absent` combines the two.
     """
     wave = np.asarray(wave, float)
     a = 1.0 + z
@@ -176,8 +187,96 @@ def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
     zabs = np.linspace(FOREST_REST[0], FOREST_REST[1], 32) * a / LYA_REST - 1.0
     expected = float(np.mean(forest_transmission(zabs)))
     allowance = (0.5 * sum(FOREST_REST) / (0.5 * sum(FOREST_RED_REST))) ** -2.5
+    rough = {}
+    for key, (lo, hi) in (("blue", FOREST_REST), ("red", FOREST_RED_REST)):
+        rough[key] = _roughness(wave, flux, ivar, lo * a, hi * a)
+    (rb, nb), (rr, nr) = rough["blue"], rough["red"]
+    rough_err = 2.6 * math.sqrt(1.0 / max(nb, 1) + 1.0 / max(nr, 1))
     return dict(ratio=float(ratio), ratio_err=float(err), expected=expected,
-                excess=float((ratio - allowance * expected) / err))
+                excess=float((ratio - allowance * expected) / err),
+                rough_blue=rb, rough_red=rr, rough_excess=float((rb - rr) / rough_err))
+
+
+def _roughness(wave, flux, ivar, lo, hi) -> tuple[float, int]:
+    """``(median(d^2 / var d) / 0.4549, number of pairs)`` over adjacent usable pixel pairs in (lo, hi)."""
+    sel = np.flatnonzero((wave > lo) & (wave < hi))
+    if sel.size < 2:
+        return math.nan, 0
+    i = sel[:-1][(np.diff(sel) == 1)]
+    i = i[(ivar[i] > 0) & (ivar[i + 1] > 0)]
+    if i.size == 0:
+        return math.nan, 0
+    d = flux[i + 1] - flux[i]
+    q = d * d / (1.0 / ivar[i] + 1.0 / ivar[i + 1])
+    return float(np.median(q) / 0.45494), int(i.size)
+
+
+def forest_absent(test: dict | None, max_excess: float = 3.0) -> bool:
+    """True when :func:`forest_test` finds neither the forest's depressed mean (``excess`` above
+    ``max_excess``) nor its roughness (``rough_excess`` at most ``max_excess``)."""
+    if test is None or not test["excess"] > max_excess:
+        return False
+    return not test["rough_excess"] > max_excess
+
+
+#: How far below its typical ratio to the strongest line a strong broad quasar line may fall:
+#: broad-line flux ratios differ from the composite's by up to a factor of about 3 between
+#: quasars (Vanden Berk et al. 2001, AJ 122, 549; from memory); 5 leaves room beyond that.
+COMPANION_ALLOWANCE = 5.0
+
+
+def companion_test(wave, resid, ivar, centres, sigmas_A, strengths, *, testable=None,
+                   allowance: float = COMPANION_ALLOWANCE, min_snr: float = 5.0) -> dict | None:
+    """Are the strong lines that must come with the strongest one there?
+
+    ``centres`` and ``sigmas_A`` place Gaussians of fixed centre and width (Angstrom) for lines
+    whose typical fluxes relative to each other are ``strengths`` (e.g. a composite quasar's
+    Ly-alpha 1, C IV 0.25, C III] 0.16, Mg II 0.15). Each flux is measured by
+    :func:`fixed_line_flux`; the line of highest S/N leads, and every other observed line clear
+    of the leader's profile (4 sigma each) must reach ``strength / strength_lead / allowance``
+    of its flux; ``testable`` (bool per line, default all) limits which lines may count as
+    missing (lines that absorption can remove may still lead). Returns None when fewer than
+    two lines are observed or the leader's S/N is below ``min_snr``; otherwise a dict with the
+    index of the ``lead`` and of the most ``missing`` line, their fluxes, and ``deficit`` =
+    (required - measured flux) / error of that line: > 3 means a companion is missing, evidence
+    against the reading (one broad bump that any line could fit, such as the residual of a
+    continuum break).
+
+    >>> import numpy as np
+    >>> w = np.arange(3800.0, 9200.0, 1.0)
+    >>> g = lambda c, s, f: f / (np.sqrt(2 * np.pi) * s) * np.exp(-0.5 * ((w - c) / s) ** 2)
+    >>> lone = g(7000.0, 40.0, 400.0) + np.random.default_rng(1).normal(0, 0.05, w.size)
+    >>> t = companion_test(w, lone, np.full(w.size, 400.0), [4000.0, 7000.0], [25.0, 40.0], [1.0, 1.0])
+    >>> t["lead"], t["missing"], t["deficit"] > 3
+    (1, 0, True)
+    """
+    strengths = np.asarray(strengths, float)
+    meas = np.array([fixed_line_flux(wave, resid, ivar, c, s) for c, s in zip(centres, sigmas_A)],
+                    dtype=float).reshape(-1, 2)
+    f, e = meas[:, 0], meas[:, 1]
+    ok = np.isfinite(f) & np.isfinite(e) & (e > 0) & (strengths > 0)
+    if ok.sum() < 2:
+        return None
+    snr = np.where(ok, f / np.where(ok, e, 1.0), -np.inf)
+    lead = int(np.argmax(snr))
+    if snr[lead] < min_snr:
+        return None
+    frac = strengths / strengths[lead] / allowance
+    err = np.hypot(e, frac * e[lead])
+    deficit = np.where(ok, (frac * f[lead] - f) / np.where(ok, err, 1.0), -np.inf)
+    # a line inside the leader's own profile is not measured apart from it (N V 1240 on the
+    # wing of Ly-alpha, absorbed by the outflows of broad-absorption-line quasars)
+    centres = np.asarray(centres, float)
+    sig = np.asarray(sigmas_A, float)
+    near = np.abs(centres - centres[lead]) < 4.0 * (sig + sig[lead])
+    deficit[near] = -np.inf
+    if testable is not None:
+        deficit[~np.asarray(testable, bool)] = -np.inf
+    k = int(np.argmax(deficit))
+    if not np.isfinite(deficit[k]):
+        return None
+    return dict(lead=lead, missing=k, flux_lead=float(f[lead]), flux_missing=float(f[k]),
+                deficit=float(deficit[k]))
 
 
 def birge_factor(z_lines, z_errs, *, quantile_sigma: float = 2.0) -> float:

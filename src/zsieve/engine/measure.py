@@ -39,7 +39,7 @@ from ..result import Candidate, FitResult, LineMatch
 from .bootstrap import bootstrap, robust_sigma
 from .config import MeasureConfig
 from .detect import detect_features
-from .evidence import balmer_test, birge_factor, doublet_delta_chi2, forest_test
+from .evidence import LYA_REST, balmer_test, birge_factor, companion_test, doublet_delta_chi2, forest_absent, forest_test
 from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
 from .prepare import C_KMS, LoglamMap, flux_scale, prepare, range_mask, sky_ranges
@@ -130,6 +130,19 @@ def _quick_score(ls, z, prep, sig_inst, width, penalty):
         return -np.inf, 0
     a, d = m.fit_linear(prep.resid, z, width)
     return d - penalty * int((a > 0).sum()), int((a > 0).sum())
+
+
+def _distinct(fits, limit):
+    """The best-first ``fits`` without those within 300 km/s of a better one of the same class
+    (100 km/s of another class), at most ``limit`` of them."""
+    out: list[tuple[CandidateFit, Seed]] = []
+    for f, s in fits:
+        if any(_same_z(f.z, g.z, 300.0 if f.cls == g.cls else 100.0) for g, _ in out):
+            continue
+        out.append((f, s))
+        if len(out) >= limit:
+            break
+    return out
 
 
 def _same_z(z1, z2, kms):
@@ -275,13 +288,11 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
             continue
         fits.append((fit, s))
     fits.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
-    uniq: list[tuple[CandidateFit, Seed]] = []
-    for f, s in fits:
-        if any(_same_z(f.z, g.z, 300.0 if f.cls == g.cls else 100.0) for g, _ in uniq):
-            continue
-        uniq.append((f, s))
-        if len(uniq) >= cfg.n_candidates:
-            break
+    # readings refuted by the lines that must come with them go before the list is cut
+    fits, rejected = _forest_veto(fits, prep, sig_inst)
+    if rejected:
+        res.extra["rejected"] = rejected
+    uniq = _distinct(fits, cfg.n_candidates)
     if not uniq:
         res.message = "no line pattern or template matched"
         res.grade = "none"
@@ -299,9 +310,9 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         if g.ok and g.n_active and g.dchi2 - cfg.penalty * g.n_active >= f.dchi2 - cfg.penalty * f.n_active - 1e-6:
             uniq[k] = (g, s)
     uniq.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
-    uniq, rejected = _forest_veto(uniq, prep, sig_inst)
-    if rejected:
-        res.extra["rejected"] = rejected
+    # a polish may carry a runner-up onto the leader's z (a star's window is the whole
+    # stellar velocity range): one answer must not split its resamples between two copies
+    uniq = _distinct(uniq, len(uniq))
     evid = np.array([f.dchi2 - cfg.penalty * f.n_active for f, _ in uniq])
     score_min = GRADE_SCORE_MIN
     # ---------------------------------------------------------------- bootstrap
@@ -517,7 +528,7 @@ def _doublet_evidence(best, rows, prep, sig_inst) -> dict:
 
 def _forest_veto(uniq, prep, sig_inst, max_excess: float = 3.0):
     """Drop readings that the lines which must come with them refute: Ly-alpha at z > 2 whose
-    forest is absent (:func:`forest_test` excess above ``max_excess``), and emission-galaxy
+    forest is absent (:func:`forest_absent`: neither its depressed mean nor its roughness), and emission-galaxy
     readings with H-beta but no fitted H-alpha where case-B recombination requires one
     (:func:`balmer_test` deficit above ``max_excess``). Returns the kept candidates and a
     record of the dropped ones. All kept if every candidate would go."""
@@ -538,13 +549,39 @@ def _forest_veto(uniq, prep, sig_inst, max_excess: float = 3.0):
                 continue
         if f.z > 2.0 and "Ly-alpha" in names:
             t = forest_test(prep.wave, prep.flux, prep.ivar, f.z)
-            if t is not None and t["excess"] > max_excess:
+            if forest_absent(t, max_excess):
                 gone.append(dict(z=float(f.z), template=f.cls, reason="no Ly-alpha forest", **t))
+                continue
+        if f.cls == "quasar":
+            t = _broad_companions(f, prep)
+            if t is not None and t["deficit"] > max_excess:
+                gone.append(dict(z=float(f.z), template=f.cls, reason="broad companion line missing", **t))
                 continue
         keep.append((f, s))
     if not keep:
         return uniq, []
     return keep, gone
+
+
+def _broad_companions(f, prep, min_strength: float = 0.15):
+    """:func:`companion_test` on the broad lines of a quasar fit, at the fit's z and widths,
+    with the line list's typical strengths (composite relative fluxes). Any broad line may
+    lead; only the strong ones (typical strength at least ``min_strength`` of Ly-alpha's:
+    Ly-alpha, C IV, C III], Mg II, H-alpha) can be found missing, and not in the forest."""
+    ls = f.model.ls
+    strong = np.flatnonzero(ls.broad & (ls.strength > 0))
+    if strong.size < 2:
+        return None
+    centre = f.model.centres(f.z)[strong]
+    sigma = centre * f.model._sigma_v(f.width_kms, f.broad_scale)[strong] / C_KMS
+    # weak lines vary too much from quasar to quasar, and lines blueward of Ly-alpha sit in
+    # the forest, which can absorb them: they may lead only
+    testable = (ls.strength[strong] >= min_strength) & (ls.wave[strong] > LYA_REST - 1.0)
+    t = companion_test(prep.wave, prep.resid, prep.ivar, centre, sigma, ls.strength[strong],
+                       testable=testable)
+    if t is not None:
+        t["lead"], t["missing"] = ls.names[strong[t["lead"]]], ls.names[strong[t["missing"]]]
+    return t
 
 
 def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=None):
