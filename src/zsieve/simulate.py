@@ -604,7 +604,8 @@ def mock_spectrum(
     Returns
     -------
     (Spectrum, dict)
-        The spectrum (vacuum Angstrom) and ``truth`` with keys ``z, kind, snr, z_bound,
+        The spectrum (vacuum Angstrom) and ``truth`` with keys ``z, kind, snr, snr_second``
+        (emission-line kinds: the optimal S/N of the second strongest line; else nan), ``z_bound,
         sigma0, lines`` (one dict per line put in: name, kind, wave_rest, wave_obs,
         fwhm_kms, flux or ew_obs), ``params`` (drawn class parameters), ``sky_spikes``,
         ``medium``, ``resolution``, ``model`` (the noiseless flux) and ``sigma_base``.
@@ -663,6 +664,7 @@ def mock_spectrum(
     cont, emis, absorb, per_line = model.components(zz)
     noiseless_no_sky = (cont * absorb + emis) * trans
 
+    snr_second = math.nan
     if kind in ("emission-galaxy", "single-line"):
         if per_line is None:
             raise ValueError(f"no emission line of {kind!r} falls inside the grid at z={z}")
@@ -674,6 +676,11 @@ def mock_spectrum(
         strongest = per_line[int(np.argmax(fluxes))] * trans
         info = float(np.sqrt(np.sum((strongest / shape) ** 2)))
         sigma0 = info / snr if snr > 0 else float(np.median(cont))
+        # the optimal S/N of every line on the same noise: the second highest says whether a
+        # pattern (two lines) is there to be found at all
+        each = np.sqrt(np.sum((per_line * trans / shape) ** 2, axis=1)) / sigma0
+        each = np.sort(np.where(inside, each, 0.0))[::-1]
+        snr_second = float(each[1]) if each.size > 1 else 0.0
     else:
         level = float(np.median(noiseless_no_sky / shape))
         if kind == "noise":
@@ -720,7 +727,7 @@ def mock_spectrum(
     meta = meta.replace(medium=medium, wave_unit="Angstrom")
     spec = Spectrum(wave, flux, sigma, meta=meta)
     truth = dict(
-        z=z, kind=kind, snr=float(snr), z_bound=float(z_bound), sigma0=float(sigma0),
+        z=z, kind=kind, snr=float(snr), snr_second=snr_second, z_bound=float(z_bound), sigma0=float(sigma0),
         lines=line_log, params=params, sky_spikes=spike_log, medium=medium,
         resolution=float(resolution), dlog10=None if dlambda is not None else float(dlog10),
         dlambda=None if dlambda is None else float(dlambda), model=base, sigma_base=sigma_base,

@@ -44,7 +44,7 @@ def _one(args):
     res = measure(spec, MeasureConfig(n_resamples=n_res, seed=int(truth["index"])))
     dt = time.perf_counter() - t0
     ev = res.extra.get("evidence", {})
-    return dict(kind=truth["kind"], z=truth["z"], snr=truth["snr"], bound=truth.get("z_bound", math.nan),
+    return dict(kind=truth["kind"], z=truth["z"], snr=truth["snr"], snr2=truth.get("snr_second", math.nan), bound=truth.get("z_bound", math.nan),
                 medium=medium, z_fit=res.z, z_err=res.z_err, grade=res.grade, conf=res.confidence,
                 template=res.template, flags=",".join(res.flags), dt=dt, n_lines=ev.get("n_lines", 0),
                 evidence=ev.get("evidence", 0.0), margin=ev.get("margin", 0.0))
@@ -107,6 +107,16 @@ def summarise(rows):
             scat = mb = pull = pullr = ratio = math.nan
         p(f"  {k:18s} {len(sel):5d} {comp:6.3f} {fs:6.3f} {fl:6.3f} {scat:9.2f} {mb:8.2f} {ratio:6.2f} "
           f"{pull:6.2f} {pullr:6.2f}")
+    em = [r for r in rows if r["kind"] == "emission-galaxy"]
+    if em:
+        # a lone line cannot be secure or likely (its rest line is not decided): completeness
+        # where a second line is there to be found, beside the strongest-line definition above
+        p("  emission-galaxy completeness by the S/N of the second strongest line:")
+        for lo, hi in ((0, 3), (3, 5), (5, 1e9)):
+            sel = [r for r in em if lo <= r["snr2"] < hi]
+            if sel:
+                comp = np.mean([r["right"] and r["grade"] in ("secure", "likely") for r in sel])
+                p(f"    second line S/N {lo:>3g}-{hi:<5g} n={len(sel):4d} complete={comp:.3f}")
     p("")
     p("by S/N bin (all classes with a true z): completeness (secure+likely right), catastrophic among secure")
     edges = [0, 3, 5, 8, 15, 30, 1e9]
