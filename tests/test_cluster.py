@@ -179,7 +179,10 @@ def test_interrupted_dask_run_keeps_its_records_and_resumes(data, reference, loc
             pressed.append(row["key"])
             raise KeyboardInterrupt
 
-    s = cluster.run(files, out, _settings(), scheduler=lc.scheduler_address, on_row=ctrl_c)
+    # a window of one task per worker thread, so that work remains however fast the workers
+    # are against this process (with the default window all 6 can finish before the first
+    # row is taken)
+    s = cluster.run(files, out, _settings(in_flight_per_job=1), scheduler=lc.scheduler_address, on_row=ctrl_c)
     assert s.interrupted
     made = _records(out)
     assert 0 < len(made) < len(files)

@@ -8,7 +8,6 @@ specification, RFC 2083 section 3.1) and the PDF header (ISO 32000-1, 7.5.2).
 import math
 
 import numpy as np
-import pytest
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from scipy import ndimage
 

@@ -575,7 +575,6 @@ def _wavelength_order_cases(b, rng):
     lg = _log_grid()
     f, s = _noisy(lg, rng)
     cols = ["wavelength", "flux", "error"]
-    n = lg.size
     shuffled = lg.copy()
     seg = slice(1000, 1040)
     shuffled[seg] = rng.permutation(shuffled[seg])

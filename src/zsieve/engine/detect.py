@@ -175,7 +175,7 @@ def fit_isolated(wave, resid, ivar, cont, peaks, widths_A, amps, n_iter: int = 8
 def _pack(a, mu, s, cov, i, wave, cont, n=1):
     """Feature fields from amplitude, centroid, sigma and their covariance (index i of n)."""
     var = np.clip(np.diag(cov), 0, None)
-    ea, emu, es = np.sqrt(var[i]), np.sqrt(var[n + i]), np.sqrt(var[2 * n + i])
+    emu, es = np.sqrt(var[n + i]), np.sqrt(var[2 * n + i])
     flux = a * s * math.sqrt(2 * math.pi)
     ja = np.zeros(3 * n)
     ja[i] = s * math.sqrt(2 * math.pi)
