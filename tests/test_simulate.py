@@ -260,3 +260,27 @@ def test_bound_is_reached_by_a_least_squares_centroid():
     # the fit also frees width and continuum, which costs little information for a centroid
     assert 0.85 < ratio < 1.25
     assert abs(np.mean(dz)) < 4 * np.mean(bounds) / math.sqrt(150)
+
+
+def test_second_feature_snr_counts_a_blend_once():
+    # matched-filter S/N sqrt(sum (m / sigma)^2) (common practice); [O II] 3727.09/3729.88
+    # (NIST vacuum, from memory) are 224 km/s apart: at sigma 116 km/s one blended feature
+    from zsieve.simulate import _second_feature_snr
+
+    w = np.linspace(7900.0, 8300.0, 4000)
+    c_kms = 299792.458
+
+    def prof(c, sv, a):
+        s = c * sv / c_kms
+        return a * np.exp(-0.5 * ((w - c) / s) ** 2)
+
+    oii = np.array([3727.09, 3729.88]) * 2.15
+    third = 8200.0
+    p = np.stack([prof(oii[0], 116.0, 1.0), prof(oii[1], 116.0, 1.3), prof(third, 116.0, 0.5)])
+    cen, sv = np.array([oii[0], oii[1], third]), np.full(3, 116.0)
+    got = _second_feature_snr(p, np.ones(3, bool), cen, sv)
+    assert got == pytest.approx(np.sqrt(np.sum(p[2] ** 2)))
+    # narrow lines (sigma 40 km/s): the doublet is resolved, so its weaker member is second
+    p_n = np.stack([prof(oii[0], 40.0, 1.0), prof(oii[1], 40.0, 1.3), prof(third, 40.0, 0.1)])
+    got_n = _second_feature_snr(p_n, np.ones(3, bool), cen, np.full(3, 40.0))
+    assert got_n == pytest.approx(np.sqrt(np.sum(p_n[0] ** 2)))

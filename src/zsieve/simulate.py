@@ -465,6 +465,26 @@ def _single_line(rng, resolution, wave_lo, wave_hi, z, line):
     return continuum, ln, dict(line=line, fwhm_kms=fwhm, ew_rest=ew)
 
 
+def _second_feature_snr(profiles, inside, centres, sigma_v, blend: float = 2.5) -> float:
+    """Optimal S/N of the second strongest separate feature: lines whose centres lie within
+    ``blend`` times their Gaussian sigma of each other form one feature (a blend such as
+    [O II] 3727/3730 at modest resolution), whose S/N is that of their summed profile.
+    ``profiles`` are the lines' noiseless profiles over the noise sigma; whether a second
+    feature is there says whether a pattern can be found at all."""
+    idx = np.flatnonzero(inside)
+    if idx.size < 2:
+        return 0.0
+    idx = idx[np.argsort(centres[idx])]
+    c = centres[idx]
+    gap = np.diff(c) / c[1:] * C_KMS
+    join = gap < blend * np.maximum(sigma_v[idx][1:], sigma_v[idx][:-1])
+    label = np.concatenate([[0], np.cumsum(~join)])
+    feat = np.zeros((label[-1] + 1, profiles.shape[1]))
+    np.add.at(feat, label, profiles[idx])
+    snr = np.sort(np.sqrt(np.sum(feat**2, axis=1)))[::-1]
+    return float(snr[1]) if snr.size > 1 else 0.0
+
+
 # ----------------------------------------------------------------------- sky and forest
 def _forest_transmission(rng, wave, z):
     """Ly-alpha forest (and a Lyman-limit drop) in the observed frame; 1 redward of Ly-alpha."""
@@ -605,7 +625,8 @@ def mock_spectrum(
     -------
     (Spectrum, dict)
         The spectrum (vacuum Angstrom) and ``truth`` with keys ``z, kind, snr, snr_second``
-        (emission-line kinds: the optimal S/N of the second strongest line; else nan), ``z_bound,
+        (emission-line kinds: the optimal S/N of the second strongest separate feature, blends
+        counted once; else nan), ``z_bound,
         sigma0, lines`` (one dict per line put in: name, kind, wave_rest, wave_obs,
         fwhm_kms, flux or ew_obs), ``params`` (drawn class parameters), ``sky_spikes``,
         ``medium``, ``resolution``, ``model`` (the noiseless flux) and ``sigma_base``.
@@ -676,11 +697,8 @@ def mock_spectrum(
         strongest = per_line[int(np.argmax(fluxes))] * trans
         info = float(np.sqrt(np.sum((strongest / shape) ** 2)))
         sigma0 = info / snr if snr > 0 else float(np.median(cont))
-        # the optimal S/N of every line on the same noise: the second highest says whether a
-        # pattern (two lines) is there to be found at all
-        each = np.sqrt(np.sum((per_line * trans / shape) ** 2, axis=1)) / sigma0
-        each = np.sort(np.where(inside, each, 0.0))[::-1]
-        snr_second = float(each[1]) if each.size > 1 else 0.0
+        snr_second = _second_feature_snr(per_line * trans / shape / sigma0, inside,
+                                         ln["em_rest"] * (1 + z), ln["em_sigma_v"])
     else:
         level = float(np.median(noiseless_no_sky / shape))
         if kind == "noise":

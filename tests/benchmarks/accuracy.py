@@ -111,12 +111,12 @@ def summarise(rows):
     if em:
         # a lone line cannot be secure or likely (its rest line is not decided): completeness
         # where a second line is there to be found, beside the strongest-line definition above
-        p("  emission-galaxy completeness by the S/N of the second strongest line:")
+        p("  emission-galaxy completeness by the S/N of the second strongest separate feature (blends once):")
         for lo, hi in ((0, 3), (3, 5), (5, 1e9)):
             sel = [r for r in em if lo <= r["snr2"] < hi]
             if sel:
                 comp = np.mean([r["right"] and r["grade"] in ("secure", "likely") for r in sel])
-                p(f"    second line S/N {lo:>3g}-{hi:<5g} n={len(sel):4d} complete={comp:.3f}")
+                p(f"    second feature S/N {lo:>3g}-{hi:<5g} n={len(sel):4d} complete={comp:.3f}")
     p("")
     p("by S/N bin (all classes with a true z): completeness (secure+likely right), catastrophic among secure")
     edges = [0, 3, 5, 8, 15, 30, 1e9]

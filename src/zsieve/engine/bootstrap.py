@@ -37,9 +37,14 @@ from .prepare import Prepared, continuum_batch, continuum_operator
 from .refine import SQRT2PI, WINDOW_SIGMA, CandidateFit
 from .prepare import C_KMS
 
-__all__ = ["BootstrapResult", "resample_noise", "bootstrap", "robust_sigma"]
+__all__ = ["BootstrapResult", "resample_noise", "bootstrap", "robust_sigma", "hopeless", "HOPELESS_SIGMA"]
 
 log = logging.getLogger(__name__)
+
+#: A candidate whose penalised evidence lies this many standard deviations (of the resampled
+#: difference to the leader's) below the leader's is never adopted by a resample (a Gaussian
+#: fluctuation of 10 sigma has probability ~1e-23), so its resamples are not computed.
+HOPELESS_SIGMA = 10.0
 
 
 def robust_sigma(x) -> float:
@@ -70,14 +75,42 @@ class BootstrapResult:
     resid: np.ndarray | None = None  # (n, npix) resampled residuals (for batched correlation)
 
 
+def hopeless(fits: list[CandidateFit], penalty: float, n_sigma: float = HOPELESS_SIGMA) -> np.ndarray:
+    """Candidates no resample can adopt: penalised evidence more than ``n_sigma`` below the
+    leader's, in units of the spread of the difference.
+
+    A linear model of ``p`` parameters fitted to data with chi-square improvement ``d`` gives,
+    on resamples, a non-central chi-square of ``p`` degrees of freedom and non-centrality
+    ``d``: variance ``4 d + 2 p`` (common practice). The difference of two candidates' values
+    has at most the sum of their standard deviations.
+
+    >>> from types import SimpleNamespace as F
+    >>> import numpy as np
+    >>> fits = [F(dchi2=4000.0, amps=np.ones(12)), F(dchi2=3900.0, amps=np.ones(10)),
+    ...         F(dchi2=800.0, amps=np.ones(5))]
+    >>> hopeless(fits, penalty=9.0).tolist()
+    [False, False, True]
+    """
+    if not fits:
+        return np.zeros(0, dtype=bool)
+    act = np.array([np.count_nonzero(np.asarray(f.amps) > 0) for f in fits], dtype=float)
+    d = np.array([f.dchi2 for f in fits], dtype=float)
+    score = d - penalty * act
+    sd = np.sqrt(4.0 * np.clip(d, 0.0, None) + 2.0 * (act + 1.0))
+    lead = int(np.argmax(score))
+    return score[lead] - score > n_sigma * (sd[lead] + sd)
+
+
 def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty: float,
               score_min: float, keep_resid: bool = False, noise=None) -> BootstrapResult:
-    """Repeat the decision on ``n`` resamples (see module docstring)."""
+    """Repeat the decision on ``n`` resamples (see module docstring). Candidates that no
+    resample can adopt (:func:`hopeless`) get probability 0 without being resampled."""
     nf = len(fits)
+    skip = hopeless(fits, penalty) if nf else np.zeros(0, dtype=bool)
     if noise is None and not keep_resid:
         # only the pixels the candidates' line models see are needed: draw those, and the rest
         # of each continuum block as one Gaussian sum (same distribution, far fewer draws)
-        U, R = _resample_on(prep, fits, n, rng)
+        U, R = _resample_on(prep, [f for f, s in zip(fits, skip) if not s], n, rng)
     else:
         eps = resample_noise(prep, n, rng) if noise is None else noise
         c_eps = continuum_batch(eps, prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
@@ -89,7 +122,7 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
     for k, fit in enumerate(fits):  # over shortlisted candidates (a handful)
         m = fit.model
         act = np.flatnonzero(fit.amps > 0)
-        if act.size == 0 or m.pix.size == 0:
+        if act.size == 0 or m.pix.size == 0 or skip[k]:
             continue
         G = m.design(fit.z, fit.width_kms, fit.broad_scale)
         dz = m.model_derivs(fit.z, fit.width_kms, fit.broad_scale, fit.amps)[0]  # = D @ amps

@@ -37,7 +37,7 @@ True
 from __future__ import annotations
 
 import logging
-from functools import lru_cache
+from functools import cached_property, lru_cache
 from dataclasses import dataclass
 
 import numpy as np
@@ -316,9 +316,12 @@ class Prepared:
     sigma_from_scatter: bool = False
     continuum_kms: float = 8000.0
 
-    @property
+    @cached_property
     def resid(self) -> np.ndarray:
-        return np.where(self.ivar > 0, self.flux - self.continuum, 0.0)
+        """Flux minus continuum, 0 on masked pixels (computed once; read-only)."""
+        r = np.where(self.ivar > 0, self.flux - self.continuum, 0.0)
+        r.flags.writeable = False
+        return r
 
 
 def _scatter_sigma(flux, good, lnwave, scale_kms=8000.0):
