@@ -626,9 +626,8 @@ def mock_spectrum(
     (Spectrum, dict)
         The spectrum (vacuum Angstrom) and ``truth`` with keys ``z, kind, snr, snr_second``
         (emission-line kinds: the optimal S/N of the second strongest separate feature, blends
-        counted once; else nan), ``z_bound,
-        sigma0, lines`` (one dict per line put in: name, kind, wave_rest, wave_obs,
-        fwhm_kms, flux or ew_obs), ``params`` (drawn class parameters), ``sky_spikes``,
+        counted once; else nan), ``z_bound, sigma0, lines`` (one dict per line put in: name,
+        kind, wave_rest, wave_obs, fwhm_kms, flux or ew_obs), ``params`` (drawn class parameters), ``sky_spikes``,
         ``medium``, ``resolution``, ``model`` (the noiseless flux) and ``sigma_base``.
     """
     from .engine.bound import cramer_rao_sigma_z

@@ -106,7 +106,7 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
     """Repeat the decision on ``n`` resamples (see module docstring). Candidates that no
     resample can adopt (:func:`hopeless`) get probability 0 without being resampled."""
     nf = len(fits)
-    skip = hopeless(fits, penalty) if nf else np.zeros(0, dtype=bool)
+    skip = hopeless(fits, penalty)
     if noise is None and not keep_resid:
         # only the pixels the candidates' line models see are needed: draw those, and the rest
         # of each continuum block as one Gaussian sum (same distribution, far fewer draws)

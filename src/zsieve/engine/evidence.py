@@ -187,10 +187,7 @@ def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
     zabs = np.linspace(FOREST_REST[0], FOREST_REST[1], 32) * a / LYA_REST - 1.0
     expected = float(np.mean(forest_transmission(zabs)))
     allowance = (0.5 * sum(FOREST_REST) / (0.5 * sum(FOREST_RED_REST))) ** -2.5
-    rough = {}
-    for key, (lo, hi) in (("blue", FOREST_REST), ("red", FOREST_RED_REST)):
-        rough[key] = _roughness(wave, flux, ivar, lo * a, hi * a)
-    (rb, nb), (rr, nr) = rough["blue"], rough["red"]
+    (rb, nb), (rr, nr) = (_roughness(wave, flux, ivar, lo * a, hi * a) for lo, hi in (FOREST_REST, FOREST_RED_REST))
     rough_err = 2.6 * math.sqrt(1.0 / max(nb, 1) + 1.0 / max(nr, 1))
     return dict(ratio=float(ratio), ratio_err=float(err), expected=expected,
                 excess=float((ratio - allowance * expected) / err),
@@ -236,7 +233,8 @@ def companion_test(wave, resid, ivar, centres, sigmas_A, strengths, *, testable=
     of the leader's profile (4 sigma each) must reach ``strength / strength_lead / allowance``
     of its flux; ``testable`` (bool per line, default all) limits which lines may count as
     missing (lines that absorption can remove may still lead). Returns None when fewer than
-    two lines are observed or the leader's S/N is below ``min_snr``; otherwise a dict with the
+    two lines are observed, the leader's S/N is below ``min_snr`` or no other line can be
+    tested; otherwise a dict with the
     index of the ``lead`` and of the most ``missing`` line, their fluxes, and ``deficit`` =
     (required - measured flux) / error of that line: > 3 means a companion is missing, evidence
     against the reading (one broad bump that any line could fit, such as the residual of a

@@ -289,7 +289,7 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         fits.append((fit, s))
     fits.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
     # readings refuted by the lines that must come with them go before the list is cut
-    fits, rejected = _forest_veto(fits, prep, sig_inst)
+    fits, rejected = _refuted(fits, prep, sig_inst)
     if rejected:
         res.extra["rejected"] = rejected
     uniq = _distinct(fits, cfg.n_candidates)
@@ -526,14 +526,16 @@ def _doublet_evidence(best, rows, prep, sig_inst) -> dict:
     return {g: float(d)}
 
 
-def _forest_veto(uniq, prep, sig_inst, max_excess: float = 3.0):
-    """Drop readings that the lines which must come with them refute: Ly-alpha at z > 2 whose
-    forest is absent (:func:`forest_absent`: neither its depressed mean nor its roughness), and emission-galaxy
-    readings with H-beta but no fitted H-alpha where case-B recombination requires one
-    (:func:`balmer_test` deficit above ``max_excess``). Returns the kept candidates and a
-    record of the dropped ones. All kept if every candidate would go."""
+def _refuted(fits, prep, sig_inst, max_excess: float = 3.0):
+    """Drop readings that the lines which must come with them refute (each test's statistic
+    above ``max_excess``): Ly-alpha at z > 2 whose forest is absent (:func:`forest_absent`:
+    neither its depressed mean nor its roughness); emission-galaxy readings with H-beta but no
+    fitted H-alpha where case-B recombination requires one (:func:`balmer_test`); quasar
+    readings whose strong broad lines are missing beside the strongest (:func:`companion_test`).
+    Returns the kept candidates and a record of the dropped ones. All kept if every candidate
+    would go."""
     keep, gone = [], []
-    for f, s in uniq:
+    for f, s in fits:
         names = [f.model.ls.names[l] for l in f.active_lines]
         # only for a reading resting on one or two lines with H-alpha missing from the fit: a
         # fitted H-alpha, even weaker than case B (flux calibration, blends), supports it, and a
@@ -559,7 +561,7 @@ def _forest_veto(uniq, prep, sig_inst, max_excess: float = 3.0):
                 continue
         keep.append((f, s))
     if not keep:
-        return uniq, []
+        return fits, []
     return keep, gone
 
 
