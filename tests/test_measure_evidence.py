@@ -15,6 +15,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 
 from zsieve.engine.evidence import (BALMER_CASE_B, balmer_test, birge_factor, doublet_delta_chi2,
                                     companion_test, forest_absent, forest_test, forest_transmission)
@@ -194,6 +195,32 @@ def test_forest_seen_by_its_lines_where_the_sightline_is_unusually_clear():
     assert not forest_absent(usual)
 
 
+def test_smooth_blue_side_of_a_break_is_no_forest():
+    # A 4000 A break (common practice: D4000 ~ 1.5-2 in old populations, so the flux blueward
+    # is ~0.55 of redward) at z = 0.587 puts its step where Ly-alpha of z = 4.27 would be: the
+    # mean flux blueward is depressed as a forest would depress it (mean transmission ~0.42 at
+    # the absorbers' z, Faucher-Giguere 2008, from memory), so the mean alone cannot refute
+    # Ly-alpha. But the forest is a thicket of narrow lines whose pixel-to-pixel rms is a large
+    # fraction of its depth (flux power spectrum, McDonald et al. 2006, from memory), and the
+    # break's blue side is smooth: refuted. The same forest-depressed quasar is not.
+    rng = np.random.default_rng(12)
+    wave = _grid()
+    zq = 4.27
+    step = 4000.0 * 1.587
+    cont = 1.0 - 0.45 / (1.0 + np.exp((wave - step) / 15.0))  # 0.55 below the break, 1 above
+    ivar = np.full(wave.size, 1 / 0.06**2)  # S/N ~ 10-17 per pixel
+    brk = forest_test(wave, cont + rng.normal(0, 0.06, wave.size), ivar, zq)
+    assert brk["excess"] < 3.0  # depressed mean: the old test would keep the reading
+    assert brk["rough_deficit"] > 3.0
+    assert forest_absent(brk)
+    q = np.full(wave.size, 1.0) * _thicket(rng, wave, zq, float(forest_transmission(3.8)))
+    qso = forest_test(wave, q + rng.normal(0, 0.06, wave.size), ivar, zq)
+    assert qso["rough_deficit"] < 0.0
+    assert not forest_absent(qso)
+    # at a pixel S/N of ~2 a forest's lines could hide in the noise: no verdict from roughness
+    faint = forest_test(wave, cont + rng.normal(0, 0.4, wave.size), np.full(wave.size, 1 / 0.4**2), zq)
+    assert faint["rough_deficit"] < 3.0
+
 # Relative broad-line fluxes of the SDSS composite quasar, Vanden Berk et al. 2001, AJ 122, 549
 # (from memory): Ly-alpha 100, C IV 25, C III] 16, Mg II 15; vacuum wavelengths NIST ASD (from
 # memory); broad-line FWHM ~4000-5000 km/s (common practice).
@@ -236,3 +263,52 @@ def test_lone_broad_bump_is_not_a_quasar_with_missing_lines():
     gone = [r for r in res.extra.get("rejected", []) if r["reason"] == "broad companion line missing"]
     assert gone and all(r["deficit"] > 3.0 for r in gone)
     assert res.grade in ("tentative", "none")
+
+
+def test_broad_h_alpha_needs_its_h_beta():
+    # Broad-line Balmer decrements of type-1 quasars: H-alpha/H-beta ~ 3 (Dong et al. 2008,
+    # MNRAS 383, 581; from memory; the composite's 0.30/0.09 in linelists/quasar.ecsv). A lone
+    # broad bump at 6960 A read as H-alpha at z = 0.06 leaves H-beta at 5155 A missing:
+    # refuted. A quasar with both at the composite ratio keeps its reading. NIST vacuum
+    # wavelengths (from memory).
+    rng = np.random.default_rng(14)
+    wave = _grid()
+    z = 0.0602
+    ha, hb = 6564.614 * (1 + z), 4862.683 * (1 + z)
+    lone = 5.0 + _broad(wave, ha, 1500.0, fwhm_kms=3500.0)
+    res = measure(Spectrum(wave, lone + rng.normal(0, 0.3, wave.size), np.full(wave.size, 0.3)),
+                  MeasureConfig(n_resamples=20, seed=1))
+    gone = [r for r in res.extra.get("rejected", []) if r["reason"] == "broad companion line missing"
+            and abs(r["z"] - z) < 0.01]
+    assert gone and gone[0]["missing"] == "H-beta" and gone[0]["deficit"] > 3.0
+    both = lone + _broad(wave, hb, 1500.0 * 0.09 / 0.30, fwhm_kms=4200.0)
+    res = measure(Spectrum(wave, both + rng.normal(0, 0.3, wave.size), np.full(wave.size, 0.3)),
+                  MeasureConfig(n_resamples=20, seed=1))
+    assert not [r for r in res.extra.get("rejected", []) if abs(r["z"] - z) < 0.01 and r["template"] == "quasar"]
+    assert res.template == "quasar" and abs(res.z - z) < 0.01 * (1 + z)
+
+
+@pytest.mark.parametrize("z, in_bands", [(0.389, True), (0.33, False)])
+def test_absorption_lines_in_telluric_bands_do_not_stand_off_the_sky(z, in_bands):
+    # Telluric water bands at 7160-7340 and 8130-8350 A (air; common practice, from memory;
+    # linelists/sky.ecsv) are shallow enough to stay unmasked, but an absorption line inside
+    # one may be the band's residual: at z = 0.389 Mg b 5185 and Na D (NIST vacuum, from
+    # memory) fall in them and no line stands off the sky; at z = 0.33 both are clear.
+    from zsieve.engine.measure import _independent, _linesets
+    from zsieve.engine.prepare import prepare
+    from zsieve.engine.refine import line_table, refine
+
+    rng = np.random.default_rng(15)
+    wave = _grid()
+    flux = np.ones(wave.size)
+    for lam, ew in ((5185.048, 2.0), (5891.583, 2.5), (5897.558, 2.0)):
+        c = lam * (1 + z)
+        flux -= _gauss_flux(wave, c, c * 220.0 / C_KMS, ew * (1 + z))
+    spec = Spectrum(wave, flux + rng.normal(0, 0.01, wave.size), np.full(wave.size, 0.01))
+    prep = prepare(spec, mask_sky=False)
+    ls = _linesets(MeasureConfig())["absorption-galaxy"]
+    fit = refine(ls, z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=64.0)
+    rows = line_table(fit, prep.wave, prep.resid, prep.ivar, prep.continuum, min_snr=2.0)
+    assert len(_independent(fit, rows)) >= 2
+    off = _independent(fit, rows, off_sky_only=True)
+    assert (len(off) == 0) if in_bands else (off == _independent(fit, rows))

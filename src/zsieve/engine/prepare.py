@@ -80,21 +80,24 @@ def range_mask(wave, ranges) -> np.ndarray:
     return starts > ends
 
 
-def sky_ranges(min_strength: float = 0.2, pad_A: float = 4.0, bands: bool = True) -> np.ndarray:
+def sky_ranges(min_strength: float = 0.2, pad_A: float = 4.0, bands: bool = True,
+               band_min_depth: float | None = None) -> np.ndarray:
     """Bright night-sky lines and telluric absorption bands of the bundled list (vacuum Angstrom).
 
     Lines at least ``min_strength`` strong are padded by ``pad_A`` on each side (a sky-line
     residual spans about one resolution element); telluric *absorption* bands at least
-    ``max(min_strength, 0.4)`` strong are taken whole. The emission-band extents of the OH forest
-    are not masked: there the uncertainty array already carries the sky noise. Returns an
-    ``(n, 2)`` array; empty (with a warning) if the sky list is unavailable.
+    ``band_min_depth`` deep (default ``max(min_strength, 0.4)``) are taken whole. The
+    emission-band extents of the OH forest are not masked: there the uncertainty array already
+    carries the sky noise. Returns an ``(n, 2)`` array; empty (with a warning) if the sky list
+    is unavailable.
     """
-    out = _sky_ranges_cached(float(min_strength), float(pad_A), bool(bands))
+    depth = max(min_strength, 0.4) if band_min_depth is None else float(band_min_depth)
+    out = _sky_ranges_cached(float(min_strength), float(pad_A), bool(bands), depth)
     return out.copy()
 
 
 @lru_cache(maxsize=32)
-def _sky_ranges_cached(min_strength: float, pad_A: float, bands: bool) -> np.ndarray:
+def _sky_ranges_cached(min_strength: float, pad_A: float, bands: bool, depth: float) -> np.ndarray:
     """:func:`sky_ranges` of the bundled sky list, read once per argument set."""
     try:
         from zsieve.lines import sky_features
@@ -108,7 +111,7 @@ def _sky_ranges_cached(min_strength: float, pad_A: float, bands: bool) -> np.nda
     lo = np.asarray(tab["wave_lo_vac"], dtype=float)
     hi = np.asarray(tab["wave_hi_vac"], dtype=float)
     is_line = (kind == "line") & (strength >= min_strength)
-    is_band = (kind == "band") & absorb & (strength >= max(min_strength, 0.4)) & bands
+    is_band = (kind == "band") & absorb & (strength >= depth) & bands
     return np.concatenate([np.column_stack([lo[is_line] - pad_A, hi[is_line] + pad_A]),
                            np.column_stack([lo[is_band], hi[is_band]])])
 
