@@ -293,3 +293,45 @@ def test_a_few_usable_pixels_is_a_failure_not_a_silent_nan(n_good):
     res = measure(Spectrum(wave, flux, np.ones(wave.size)), FAST)
     assert res.status == "failed" and res.grade == "none" and math.isnan(res.z)
     assert "usable pixels" in res.message
+
+
+def test_window_resampling_has_the_distribution_of_full_resampling():
+    # The bootstrap draws noise only on the candidates' window pixels plus one sum per
+    # continuum block; the reference is the direct parametric bootstrap (Efron 1979): noise on
+    # every pixel, the continuum re-estimated from it (continuum_batch), restricted to the
+    # same pixels. Variances and the covariance of two pixels must agree to sampling error.
+    from types import SimpleNamespace
+
+    from zsieve.engine.bootstrap import _resample_on, resample_noise
+    from zsieve.engine.prepare import continuum_batch, prepare
+
+    rng = np.random.default_rng(21)
+    wave = np.linspace(4000.0, 8000.0, 3000)
+    sigma = 0.5 + 0.5 * (wave / 8000.0) ** 2
+    spec = Spectrum(wave, 3.0 + rng.normal(0, sigma), sigma)
+    prep = prepare(spec)
+    pix = np.r_[np.arange(400, 460), np.arange(1500, 1530), np.arange(2900, 3000)]
+    fits = [SimpleNamespace(model=SimpleNamespace(pix=pix))]
+    n = 6000
+    U, R = _resample_on(prep, fits, n, np.random.default_rng(1))
+    assert np.array_equal(U, pix) and R.shape == (n, pix.size)
+    dR = R - prep.resid[U][None, :]
+    eps = resample_noise(prep, n, np.random.default_rng(2))
+    c = continuum_batch(eps, prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
+    ref = np.where(prep.ivar > 0, eps - c, 0.0)[:, U]
+    ok = prep.ivar[U] > 0  # masked pixels (sky lines) carry no noise in either
+    assert ok.sum() > 150 and np.all(dR[:, ~ok] == 0.0)
+    v, vr = dR.var(axis=0), ref.var(axis=0)
+    assert np.all(np.abs(v[ok] / vr[ok] - 1.0) < 0.1)  # ~ 4 sigma of a variance from 6000 draws
+    # the continuum's share: the mean of 60 adjacent pixels (half a continuum block) loses
+    # much of its noise to the re-estimated continuum, so its variance tests that part
+    blk = (U >= 400) & (U < 460) & ok
+    vm, vm_r = dR[:, blk].mean(axis=1).var(), ref[:, blk].mean(axis=1).var()
+    assert abs(vm / vm_r - 1.0) < 0.1
+    assert vm < 0.8 * np.mean(v[blk]) / blk.sum()  # well below independent pixels' value
+    # covariance of neighbouring pixels (shared continuum) and of distant ones (independent)
+    for i, j in ((0, 5), (0, 95), (100, 189)):
+        assert ok[i] and ok[j]
+        cov = np.mean(dR[:, i] * dR[:, j]) - dR[:, i].mean() * dR[:, j].mean()
+        cov_r = np.mean(ref[:, i] * ref[:, j]) - ref[:, i].mean() * ref[:, j].mean()
+        assert abs(cov - cov_r) < 4.0 * math.sqrt(v[i] * v[j] / n)

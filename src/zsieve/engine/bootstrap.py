@@ -32,6 +32,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import sparse
 
 from .prepare import Prepared, continuum_batch, continuum_operator
 from .refine import SQRT2PI, WINDOW_SIGMA, CandidateFit
@@ -173,33 +174,31 @@ def _resample_on(prep: Prepared, fits, n: int, rng):
     one normal draw with the variance of that sum (sum of w^2 sigma^2 = sum of w, since
     w = 1/sigma^2), so the joint distribution on ``U`` is exactly that of
     :func:`resample_noise` + :func:`~zsieve.engine.prepare.continuum_batch`.
+
+    The draws are made pixel-major (``(U, n)``, returned transposed as an ``(n, U)`` view), so
+    each candidate's window pixels are contiguous rows (see :func:`_rows_at`); the block sums
+    and the continuum's interpolation between block centres are sparse products (a pixel
+    belongs to one block and is interpolated from two).
     """
     pix = [f.model.pix for f in fits if f.model.pix.size]
     U = np.unique(np.concatenate(pix)) if pix else np.zeros(0, dtype=int)
     block, w, sw, M = continuum_operator(prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
-    s = np.where(prep.ivar > 0, prep.sigma, 0.0)[U]
-    eps = rng.standard_normal((n, U.size)) * s[None, :]
     nblk = sw.size
+    # single-precision draws (7 significant digits are plenty for noise; a third faster), scaled
+    # to the sigmas in double precision
+    eps = rng.standard_normal((U.size, n), dtype=np.float32) * np.where(prep.ivar > 0, prep.sigma, 0.0)[U][:, None]
     blk = U // block
     wU = w[U]
-    inside = np.bincount(blk, wU, minlength=nblk)  # weight of U pixels per block
-    rest = np.sqrt(np.clip(sw - inside, 0.0, None))
-    sums = np.zeros((n, nblk))
-    if U.size:  # U is sorted, so its pixels of one block are contiguous
-        first = np.flatnonzero(np.r_[True, np.diff(blk) > 0])
-        sums[:, blk[first]] = np.add.reduceat(eps * wU[None, :], first, axis=1)
-    sums += rng.standard_normal((n, nblk)) * rest[None, :]
+    rest = np.sqrt(np.clip(sw - np.bincount(blk, wU, minlength=nblk), 0.0, None))
+    sums = rng.standard_normal((nblk, n)) * rest[:, None]
+    sums += sparse.csr_matrix((wU, (blk, np.arange(U.size))), shape=(nblk, U.size)) @ eps
     with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(sw > 0, sums / np.where(sw > 0, sw, 1.0), 0.0)
-    c_eps = mean @ M[:, U]
-    # R = resid + where(ivar > 0, eps - c_eps, 0), in place, then stored pixel-major so that
-    # each candidate's window pixels are contiguous rows (see _rows_at)
-    np.subtract(eps, c_eps, out=eps)
-    bad = ~(prep.ivar[U] > 0)
-    if bad.any():
-        eps[:, bad] = 0.0
-    eps += prep.resid[U][None, :]
-    return U, np.ascontiguousarray(eps.T).T
+        mean = np.where(sw[:, None] > 0, sums / np.where(sw > 0, sw, 1.0)[:, None], 0.0)
+    # R = resid + where(ivar > 0, eps - c_eps, 0), in place
+    eps -= sparse.csr_matrix(M[:, U].T) @ mean
+    eps[~(prep.ivar[U] > 0)] = 0.0
+    eps += prep.resid[U][:, None]
+    return U, eps.T
 
 
 def _newton_z(fit: CandidateFit, R, z_n, amps):
