@@ -44,7 +44,7 @@ from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
 from .prepare import C_KMS, LoglamMap, flux_scale, prepare, range_mask, sky_ranges
 from .quasar import systemic_scatter, systemic_summary
-from .refine import CandidateFit, LineModel, group_snr, line_table, refine
+from .refine import CandidateFit, LineModel, group_snr, line_table, refine, with_formal_error
 
 __all__ = ["MeasureConfig", "measure", "STAR_MAX_KMS"]
 
@@ -125,7 +125,7 @@ def _z_window(seed: Seed, cfg):
 
 
 def _quick_score(ls, z, prep, sig_inst, width, penalty):
-    m = LineModel(ls, prep.wave, prep.ivar, sig_inst, z, width)
+    m = LineModel(ls, prep.wave, prep.ivar, sig_inst, z, width, good_cs=prep.good_cs)
     if m.n_cols == 0:
         return -np.inf, 0
     a, d = m.fit_linear(prep.resid, z, width)
@@ -279,7 +279,8 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         if s.cls == "star":
             z0 = float(np.clip(z0, star_lo, -star_lo))
         fit = refine(ls, z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
-                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar", polish=False)
+                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar", polish=False, good_cs=prep.good_cs,
+                     error=False)
         if not fit.ok or fit.n_active == 0:
             continue
         if s.cls == "star" and abs(fit.z) > STAR_MAX_KMS / C_KMS * 1.0001:
@@ -292,7 +293,7 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     fits, rejected = _refuted(fits, prep, sig_inst)
     if rejected:
         res.extra["rejected"] = rejected
-    uniq = _distinct(fits, cfg.n_candidates)
+    uniq = [(with_formal_error(f), s) for f, s in _distinct(fits, cfg.n_candidates)]
     if not uniq:
         res.message = "no line pattern or template matched"
         res.grade = "none"
@@ -306,7 +307,8 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         if not np.isfinite(zt):
             continue
         g = refine(linesets[f.cls], f.z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst,
-                   z_tol=zt if f.cls != "star" else STAR_MAX_KMS / C_KMS, width0=f.width_kms, scan=False, polish=True)
+                   z_tol=zt if f.cls != "star" else STAR_MAX_KMS / C_KMS, width0=f.width_kms, scan=False, polish=True,
+                   good_cs=prep.good_cs)
         if g.ok and g.n_active and g.dchi2 - cfg.penalty * g.n_active >= f.dchi2 - cfg.penalty * f.n_active - 1e-6:
             uniq[k] = (g, s)
     uniq.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))

@@ -302,6 +302,18 @@ class LoglamMap:
         return np.where(w > 0, out, 0.0), w
 
 
+def good_cumsum(ivar) -> np.ndarray:
+    """``(npix + 1,)`` running count of good pixels (``ivar > 0``), starting at 0: the good
+    pixels in ``[i, j)`` number ``c[j] - c[i]``.
+
+    >>> good_cumsum(np.array([1.0, 0.0, 2.0])).tolist()
+    [0, 1, 1, 2]
+    """
+    c = np.zeros(np.size(ivar) + 1, dtype=np.int64)
+    np.cumsum(np.asarray(ivar) > 0, out=c[1:])
+    return c
+
+
 @dataclass
 class Prepared:
     """A spectrum ready for measurement (native pixels, independent noise)."""
@@ -318,6 +330,13 @@ class Prepared:
     dv_kms: float  # median pixel step in km/s
     sigma_from_scatter: bool = False
     continuum_kms: float = 8000.0
+
+    @cached_property
+    def good_cs(self) -> np.ndarray:
+        """:func:`good_cumsum` of ``ivar`` (computed once; read-only)."""
+        c = good_cumsum(self.ivar)
+        c.flags.writeable = False
+        return c
 
     @cached_property
     def resid(self) -> np.ndarray:

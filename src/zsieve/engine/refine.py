@@ -40,10 +40,10 @@ from scipy.linalg.lapack import dposv as _posv
 from scipy.optimize import nnls
 
 from .detect import lm_bounded
-from .prepare import C_KMS
+from .prepare import C_KMS, good_cumsum
 from .identify import LineSet
 
-__all__ = ["LineModel", "CandidateFit", "refine", "line_table", "WIDTH_LIMITS_KMS"]
+__all__ = ["LineModel", "CandidateFit", "refine", "with_formal_error", "line_table", "WIDTH_LIMITS_KMS"]
 
 log = logging.getLogger(__name__)
 
@@ -79,10 +79,13 @@ class LineModel:
         Instrumental Gaussian sigma.
     z_slack : float
         Extra window margin in z, so the same pixels serve small changes of z.
+    good_cs : array (npix + 1,), optional
+        Cumulative count of good pixels (``ivar > 0``) with a leading 0, when the caller
+        builds many models on one spectrum (:func:`~zsieve.engine.prepare.good_cumsum`).
     """
 
     def __init__(self, ls: LineSet, wave, ivar, sigma_inst_kms: float, z: float, width_kms: float,
-                 broad_scale: float = 1.0, z_slack: float = 0.0):
+                 broad_scale: float = 1.0, z_slack: float = 0.0, good_cs=None):
         self.ls = ls
         self.sigma_inst = float(sigma_inst_kms)
         # per-line constants reused by every evaluation (the LineSet's are computed properties)
@@ -99,9 +102,8 @@ class LineModel:
         # window edges and core edges of every line in one search
         lo, hi, core_lo, core_hi = np.searchsorted(
             wave, np.concatenate([obs - half, obs + half, obs - core, obs + core])).reshape(4, nl)
-        good = ivar > 0
-        good_cs = np.zeros(wave.size + 1, dtype=np.int64)
-        np.cumsum(good, out=good_cs[1:])
+        if good_cs is None:
+            good_cs = good_cumsum(ivar)
         cover = good_cs[hi] - good_cs[lo]
         # a line is usable when most of its core is on good pixels
         core_good = good_cs[core_hi] - good_cs[core_lo]
@@ -110,7 +112,7 @@ class LineModel:
         if use.size:
             n1 = wave.size + 1
             sel = np.bincount(lo[use], minlength=n1) - np.bincount(hi[use], minlength=n1)
-            pix = np.flatnonzero((np.cumsum(sel)[:-1] > 0) & good)
+            pix = np.flatnonzero((np.cumsum(sel)[:-1] > 0) & (ivar > 0))
         else:
             pix = np.zeros(0, dtype=int)
         self.pix = pix
@@ -149,8 +151,8 @@ class LineModel:
         self._prof = None
         self._re = None
         # first entry of each column (every column has entries: its lines cover >= 3 pixels)
-        self._cstart = np.flatnonzero(np.r_[True, self._ecol[1:] != self._ecol[:-1]]) if self._ecol.size else \
-            np.zeros(0, dtype=int)
+        self._cstart = np.flatnonzero(np.concatenate(([True], self._ecol[1:] != self._ecol[:-1]))) \
+            if self._ecol.size else np.zeros(0, dtype=int)
 
     @property
     def n_cols(self) -> int:
@@ -264,8 +266,8 @@ class LineModel:
             k = max(self.n_cols, 1)
             order = np.argsort(self._epix, kind="stable")
             pe = self._epix[order]
-            start = np.flatnonzero(np.r_[True, pe[1:] != pe[:-1]])
-            cnt = np.diff(np.r_[start, pe.size])
+            start = np.flatnonzero(np.concatenate(([True], pe[1:] != pe[:-1])))
+            cnt = np.diff(np.concatenate((start, [pe.size])))
             # every ordered pair of entries of one pixel, then those with e1 < e2
             gcnt = np.repeat(cnt, cnt)
             i1 = np.repeat(order, gcnt)
@@ -276,7 +278,7 @@ class LineModel:
             cell = self._ecol[i1] * k + self._ecol[i2]
             srt = np.argsort(cell, kind="stable")
             i1, i2, cell = i1[srt], i2[srt], cell[srt]
-            cstart = np.flatnonzero(np.r_[True, cell[1:] != cell[:-1]]) if cell.size else np.zeros(0, int)
+            cstart = np.flatnonzero(np.concatenate(([True], cell[1:] != cell[:-1]))) if cell.size else np.zeros(0, int)
             self._pairs = (i1, i2, self._ew[i1], cstart, cell[cstart])
         return self._pairs
 
@@ -578,7 +580,8 @@ def _default_width(cls):
 
 
 def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, z_tol: float | None = None,
-           width0: float | None = None, scan: bool = True, polish: bool = True) -> CandidateFit:
+           width0: float | None = None, scan: bool = True, polish: bool = True, good_cs=None,
+           error: bool = True) -> CandidateFit:
     """Joint least-squares fit of all lines of ``ls`` with a single z, starting at ``z0``.
 
     ``z_tol`` bounds the search to ``z0 +/- z_tol`` (default: 300 km/s, 2000 km/s for quasars);
@@ -586,6 +589,8 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     approximate, such as correlation peaks). The fit runs a few damped Gauss-Newton steps
     (amplitudes solved exactly at each step); with ``polish`` it is finished by a bounded
     Levenberg-Marquardt fit (:func:`zsieve.engine.detect.lm_bounded`; bounds on z and widths).
+    Without ``error`` the formal error of z is left NaN (:func:`with_formal_error` adds it),
+    for fits that may be dropped unused.
     """
     cls = ls.cls
     if z_tol is None:
@@ -593,7 +598,7 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     wlo, whi = WIDTH_LIMITS_KMS[cls]
     w0 = _default_width(cls) if width0 is None else float(np.clip(width0, wlo, whi))
     model = LineModel(ls, wave, ivar, sigma_inst_kms, z0, max(w0, 0.5 * whi),
-                      broad_scale=BROAD_SCALE[1] if bool(ls.broad.any()) else 1.0, z_slack=z_tol)
+                      broad_scale=BROAD_SCALE[1] if bool(ls.broad.any()) else 1.0, z_slack=z_tol, good_cs=good_cs)
     has_broad = model._any_broad
     if model.n_cols == 0:
         return CandidateFit(cls, z0, math.inf, w0, 1.0, np.zeros(0), 0.0, 0, model, ok=False)
@@ -683,11 +688,19 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     z, wk, bs = unpack(p)
     a, dchi2 = solve(p)[1:]
     active_cols = np.flatnonzero(a > 0)
-    z_err = formal_z_error(model, z, wk, bs, a, active_cols)
+    z_err = formal_z_error(model, z, wk, bs, a, active_cols) if error else math.nan
     active_lines = [int(l) for l in np.flatnonzero(model.col_of_line >= 0)
                     if a[model.col_of_line[l]] > 0]
     return CandidateFit(cls, float(z), z_err, float(wk), float(bs), a, dchi2, int(active_cols.size),
                         model, active_lines, chi2=float(yy - dchi2))
+
+
+def with_formal_error(fit: CandidateFit) -> CandidateFit:
+    """``fit`` with its formal z error computed (in place) if :func:`refine` left it NaN."""
+    if math.isnan(fit.z_err):
+        fit.z_err = formal_z_error(fit.model, fit.z, fit.width_kms, fit.broad_scale, fit.amps,
+                                   np.flatnonzero(fit.amps > 0))
+    return fit
 
 
 def formal_z_error(model: LineModel, z, wk, bs, a, active_cols) -> float:
