@@ -186,7 +186,8 @@ def _resample_on(prep: Prepared, fits, n: int, rng):
     nblk = sw.size
     # single-precision draws (7 significant digits are plenty for noise; a third faster), scaled
     # to the sigmas in double precision
-    eps = rng.standard_normal((U.size, n), dtype=np.float32) * np.where(prep.ivar > 0, prep.sigma, 0.0)[U][:, None]
+    sig = np.where(prep.ivar > 0, prep.sigma, 0.0)[U]
+    eps = rng.standard_normal((U.size, n), dtype=np.float32) * sig[:, None]
     blk = U // block
     wU = w[U]
     rest = np.sqrt(np.clip(sw - np.bincount(blk, wU, minlength=nblk), 0.0, None))

@@ -200,7 +200,8 @@ def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
     zabs = np.linspace(FOREST_REST[0], FOREST_REST[1], 32) * a / LYA_REST - 1.0
     expected = float(np.mean(forest_transmission(zabs)))
     allowance = (0.5 * sum(FOREST_REST) / (0.5 * sum(FOREST_RED_REST))) ** -2.5
-    (rb, nb, vb), (rr, nr, _) = (_roughness(wave, flux, ivar, lo * a, hi * a) for lo, hi in (FOREST_REST, FOREST_RED_REST))
+    (rb, nb, vb), (rr, nr, _) = (_roughness(wave, flux, ivar, lo * a, hi * a)
+                                 for lo, hi in (FOREST_REST, FOREST_RED_REST))
     rough_err = 2.6 * math.sqrt(1.0 / max(nb, 1) + 1.0 / max(nr, 1))
     floor = rr + (FOREST_ROUGH_MIN * (1.0 - expected) * mr) ** 2 / vb if vb > 0 else rr
     floor_err = 2.6 * math.sqrt(floor**2 / max(nb, 1) + rr**2 / max(nr, 1))
@@ -253,8 +254,9 @@ def companion_test(wave, resid, ivar, centres, sigmas_A, strengths, *, testable=
     Ly-alpha 1, C IV 0.25, C III] 0.16, Mg II 0.15). Each flux is measured by
     :func:`fixed_line_flux`; the line of highest S/N leads, and every other observed line clear
     of the leader's profile (4 sigma each) must reach ``strength / strength_lead / allowance``
-    of its flux (``allowance`` a number or one per line); ``testable`` (bool per line, default all) limits which lines may count as
-    missing (lines that absorption can remove may still lead). Returns None when fewer than
+    of its flux (``allowance`` a number or one per line); ``testable`` (bool per line, default
+    all) limits which lines may count as missing (lines that absorption can remove may still
+    lead). Returns None when fewer than
     two lines are observed, the leader's S/N is below ``min_snr`` or no other line can be
     tested; otherwise a dict with the
     index of the ``lead`` and of the most ``missing`` line, their fluxes, and ``deficit`` =

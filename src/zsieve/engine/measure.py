@@ -278,9 +278,10 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         z0 = s.z
         if s.cls == "star":
             z0 = float(np.clip(z0, star_lo, -star_lo))
+        # no formal error yet: most of these fits are dropped below (with_formal_error adds it)
         fit = refine(ls, z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
-                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar", polish=False, good_cs=prep.good_cs,
-                     error=False)
+                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar", polish=False,
+                     good_cs=prep.good_cs, error=False)
         if not fit.ok or fit.n_active == 0:
             continue
         if s.cls == "star" and abs(fit.z) > STAR_MAX_KMS / C_KMS * 1.0001:
@@ -603,7 +604,7 @@ def _broad_companions(f, prep, min_strength: float = 0.15):
     t = companion_test(prep.wave, prep.resid, prep.ivar, centre, sigma, ls.strength[strong],
                        testable=testable, allowance=allowance)
     if t is not None:
-        t["lead"], t["missing"] = ls.names[strong[t["lead"]]], ls.names[strong[t["missing"]]]
+        t["lead"], t["missing"] = names[t["lead"]], names[t["missing"]]
     return t
 
 
