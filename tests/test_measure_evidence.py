@@ -312,3 +312,37 @@ def test_absorption_lines_in_telluric_bands_do_not_stand_off_the_sky(z, in_bands
     assert len(_independent(fit, rows)) >= 2
     off = _independent(fit, rows, off_sky_only=True)
     assert (len(off) == 0) if in_bands else (off == _independent(fit, rows))
+
+
+def test_a_lone_refuted_reading_is_dropped_when_asked():
+    # The correlation's top peak is refined on its own and must meet the same refutations as
+    # the shortlist: a smooth 4000 A break (common practice: ~0.5 of the red flux blueward)
+    # with Ca II K/H and the G band (NIST vacuum, from memory) at z = 0.8127, read as a quasar
+    # whose Ly-alpha sits on the break at z = 5.02, has no forest (Faucher-Giguere 2008 mean
+    # transmission ~0.25 there, and a forest is rough; McDonald et al. 2006). Alone in its list
+    # it is kept by default (something must be answered) and dropped with keep_all_if_none=False.
+    from zsieve.engine.identify import Seed
+    from zsieve.engine.measure import _linesets, _refuted
+    from zsieve.engine.prepare import prepare
+    from zsieve.engine.refine import refine
+
+    rng = np.random.default_rng(16)
+    wave = _grid()
+    z = 0.8127
+    rest = wave / (1 + z)
+    cont = (0.5 + 0.5 / (1 + np.exp(-(rest - 4000.0) / 8.0))) * (wave / 7000.0) ** 0.5
+    flux = cont.copy()
+    for lam, ew, fwhm in ((3934.777, 10.0, 1000.0), (3969.588, 9.0, 1000.0), (4305.6, 5.0, 900.0)):
+        c = lam * (1 + z)
+        flux -= cont * _gauss_flux(wave, c, c * fwhm / 2.3548 / C_KMS, ew * (1 + z))
+    spec = Spectrum(wave, flux + rng.normal(0, 0.05, wave.size), np.full(wave.size, 0.05))
+    prep = prepare(spec)
+    zq = 4000.0 * (1 + z) / 1215.67 - 1.0
+    fit = refine(_linesets(MeasureConfig())["quasar"], zq, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=64.0)
+    names = [fit.model.ls.names[l] for l in fit.active_lines]
+    assert fit.ok and "Ly-alpha" in names and fit.dchi2 > 100.0  # the break does fit as Ly-alpha
+    seed = Seed(zq, "quasar", "xcorr", score=0.0)
+    kept, gone = _refuted([(fit, seed)], prep, 64.0)
+    assert len(kept) == 1 and gone == []
+    kept, gone = _refuted([(fit, seed)], prep, 64.0, keep_all_if_none=False)
+    assert kept == [] and len(gone) == 1 and gone[0]["template"] == "quasar"

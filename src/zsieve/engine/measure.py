@@ -397,7 +397,12 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     res.candidates = cands
 
     # ---------------------------------------------------------------- flags and grade
-    peak_fit = _xcorr_peak_fit(xc, best, uniq, linesets, prep, sig_inst, cfg)
+    # the correlation's own top peak, refined as a reading, meets the same refutations as the
+    # readings of the shortlist: a refuted peak is no reason to doubt the answer
+    peak_fit, gone = _refuted(_xcorr_peak_fit(xc, best, uniq, linesets, prep, sig_inst, cfg), prep, sig_inst,
+                              keep_all_if_none=False)
+    if gone:
+        res.extra["rejected"] = res.extra.get("rejected", []) + gone
     flags = _flags(best, rows, uniq + peak_fit, prob, p_none, xc, prep, res, cfg,
                    np.concatenate([evid, [f.dchi2 - cfg.penalty * f.n_active for f, _ in peak_fit]]), shape)
     n_ind = cands[0].n_lines
@@ -535,43 +540,50 @@ def _doublet_evidence(best, rows, prep, sig_inst) -> dict:
     return {g: float(d)}
 
 
-def _refuted(fits, prep, sig_inst, max_excess: float = 3.0):
-    """Drop readings that the lines which must come with them refute (each test's statistic
-    above ``max_excess``): Ly-alpha at z > 2 whose forest is absent (:func:`forest_absent`:
-    neither its depressed mean nor its roughness); emission-galaxy readings with H-beta but no
-    fitted H-alpha where case-B recombination requires one (:func:`balmer_test`); quasar
-    readings whose strong broad lines are missing beside the strongest (:func:`companion_test`).
-    Returns the kept candidates and a record of the dropped ones. All kept if every candidate
-    would go."""
+def _refuted(fits, prep, sig_inst, max_excess: float = 3.0, keep_all_if_none: bool = True):
+    """Drop readings that the lines which must come with them refute (:func:`_refutation`).
+    Returns the kept candidates and a record of the dropped ones; with ``keep_all_if_none``,
+    all are kept if every candidate would go."""
     keep, gone = [], []
     for f, s in fits:
-        names = [f.model.ls.names[l] for l in f.active_lines]
-        # only for a reading resting on one or two lines with H-alpha missing from the fit: a
-        # fitted H-alpha, even weaker than case B (flux calibration, blends), supports it, and a
-        # pattern of three or more lines outweighs one absent companion
-        if f.cls == "emission-galaxy" and "H-beta" in names and "H-alpha" not in names and len(names) <= 2:
-            ls = f.model.ls
-            sv = float(np.hypot(sig_inst, f.width_kms))  # the model's narrow-line velocity sigma
-            hb = ls.wave[ls.names.index("H-beta")]
-            ha = ls.wave[ls.names.index("H-alpha")] if "H-alpha" in ls.names else None
-            t = balmer_test(prep.wave, prep.resid, prep.ivar, f.z, sv, h_beta=hb, h_alpha=ha) if ha else None
-            if t is not None and t["deficit"] > max_excess:
-                gone.append(dict(z=float(f.z), template=f.cls, reason="H-alpha weaker than case B allows", **t))
-                continue
-        if f.z > 2.0 and "Ly-alpha" in names:
-            t = forest_test(prep.wave, prep.flux, prep.ivar, f.z)
-            if forest_absent(t, max_excess):
-                gone.append(dict(z=float(f.z), template=f.cls, reason="no Ly-alpha forest", **t))
-                continue
-        if f.cls == "quasar":
-            t = _broad_companions(f, prep)
-            if t is not None and t["deficit"] > max_excess:
-                gone.append(dict(z=float(f.z), template=f.cls, reason="broad companion line missing", **t))
-                continue
-        keep.append((f, s))
-    if not keep:
+        why = _refutation(f, prep, sig_inst, max_excess)
+        if why is None:
+            keep.append((f, s))
+        else:
+            gone.append(why)
+    if not keep and keep_all_if_none:
         return fits, []
     return keep, gone
+
+
+def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
+    """The record of why reading ``f`` is refuted (each test's statistic above
+    ``max_excess``), or None: Ly-alpha at z > 2 whose forest is absent (:func:`forest_absent`:
+    neither its depressed mean nor its roughness, or smoother than any forest); emission-galaxy
+    readings with H-beta but no fitted H-alpha where case-B recombination requires one
+    (:func:`balmer_test`); quasar readings whose strong broad lines are missing beside the
+    strongest (:func:`companion_test`)."""
+    names = [f.model.ls.names[l] for l in f.active_lines]
+    # only for a reading resting on one or two lines with H-alpha missing from the fit: a
+    # fitted H-alpha, even weaker than case B (flux calibration, blends), supports it, and a
+    # pattern of three or more lines outweighs one absent companion
+    if f.cls == "emission-galaxy" and "H-beta" in names and "H-alpha" not in names and len(names) <= 2:
+        ls = f.model.ls
+        sv = float(np.hypot(sig_inst, f.width_kms))  # the model's narrow-line velocity sigma
+        hb = ls.wave[ls.names.index("H-beta")]
+        ha = ls.wave[ls.names.index("H-alpha")] if "H-alpha" in ls.names else None
+        t = balmer_test(prep.wave, prep.resid, prep.ivar, f.z, sv, h_beta=hb, h_alpha=ha) if ha else None
+        if t is not None and t["deficit"] > max_excess:
+            return dict(z=float(f.z), template=f.cls, reason="H-alpha weaker than case B allows", **t)
+    if f.z > 2.0 and "Ly-alpha" in names:
+        t = forest_test(prep.wave, prep.flux, prep.ivar, f.z)
+        if forest_absent(t, max_excess):
+            return dict(z=float(f.z), template=f.cls, reason="no Ly-alpha forest", **t)
+    if f.cls == "quasar":
+        t = _broad_companions(f, prep)
+        if t is not None and t["deficit"] > max_excess:
+            return dict(z=float(f.z), template=f.cls, reason="broad companion line missing", **t)
+    return None
 
 
 #: Broad lines testable as missing companions although weaker than ``min_strength``, with
