@@ -261,37 +261,56 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     scored.sort(key=lambda t: -t[0])
     # the class priors (a star at rest) are always refined
     shortlist = [s for q, s in scored if s.origin == "prior" and np.isfinite(q)]
-    for q, s in scored:
-        if not np.isfinite(q) or s.origin == "prior":
-            continue
-        if any(o.cls == s.cls and _same_z(o.z, s.z, 150.0) for o in shortlist):
-            continue
-        shortlist.append(s)
-        if len(shortlist) >= cfg.n_candidates + 2:
-            break
+    queue = [s for q, s in scored if np.isfinite(q) and s.origin != "prior"]
+
+    def take(n):
+        """The next ``n`` proposals of the queue that no shortlisted one of their class covers."""
+        out = []
+        while queue and len(out) < n:
+            s = queue.pop(0)
+            if not any(o.cls == s.cls and _same_z(o.z, s.z, 150.0) for o in shortlist):
+                shortlist.append(s)
+                out.append(s)
+        return out
 
     # ---------------------------------------------------------------- refine
-    fits: list[tuple[CandidateFit, Seed]] = []
-    for rank, s in enumerate(shortlist):
-        ls = linesets[s.cls]
-        zt = _z_window(s, cfg)
-        z0 = s.z
-        if s.cls == "star":
-            z0 = float(np.clip(z0, star_lo, -star_lo))
+    def fit_seed(s):
+        z0 = float(np.clip(s.z, star_lo, -star_lo)) if s.cls == "star" else s.z
         # no formal error yet: most of these fits are dropped below (with_formal_error adds it)
-        fit = refine(ls, z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
-                     scan=s.origin not in ("lines", "lone") or s.cls == "quasar", polish=False,
-                     good_cs=prep.good_cs, error=False)
+        fit = refine(linesets[s.cls], z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst,
+                     z_tol=_z_window(s, cfg), scan=s.origin not in ("lines", "lone") or s.cls == "quasar",
+                     polish=False, good_cs=prep.good_cs, error=False)
         if not fit.ok or fit.n_active == 0:
-            continue
+            return None
         if s.cls == "star" and abs(fit.z) > STAR_MAX_KMS / C_KMS * 1.0001:
-            continue
+            return None
         if s.cls != "star" and not (z_lo <= fit.z <= z_hi):
-            continue
-        fits.append((fit, s))
-    fits.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
-    # readings refuted by the lines that must come with them go before the list is cut
-    fits, rejected = _refuted(fits, prep, sig_inst)
+            return None
+        return fit
+
+    # readings refuted by the lines that must come with them go before the list is cut; when
+    # they leave fewer than n_candidates distinct readings, the next proposals take their
+    # places (a continuum break read as many quasar lines must not crowd out the answer), up
+    # to as many again as the shortlist
+    def ranked(fs):
+        return sorted(fs, key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
+
+    batch = list(shortlist) + take(cfg.n_candidates + 2 - len(shortlist))
+    every, fits, rejected = [], [], []
+    spare = cfg.n_candidates + 2
+    while batch:
+        new = [(f, s) for s in batch if (f := fit_seed(s)) is not None]
+        every += new
+        kept, gone = _refuted(new, prep, sig_inst, keep_all_if_none=False)
+        fits += kept
+        rejected += gone
+        short = cfg.n_candidates - len(_distinct(ranked(fits), cfg.n_candidates))
+        n_more = min(len(gone), spare, short) if gone and short > 0 else 0
+        spare -= n_more
+        batch = take(n_more) if n_more else []
+    if not fits:  # every reading refuted: keep them all (something must be answered)
+        fits, rejected = every, []
+    fits = ranked(fits)
     if rejected:
         res.extra["rejected"] = rejected
     uniq = [(with_formal_error(f), s) for f, s in _distinct(fits, cfg.n_candidates)]
