@@ -331,7 +331,7 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
                    good_cs=prep.good_cs)
         if g.ok and g.n_active and g.dchi2 - cfg.penalty * g.n_active >= f.dchi2 - cfg.penalty * f.n_active - 1e-6:
             uniq[k] = (g, s)
-    uniq.sort(key=lambda t: -(t[0].dchi2 - cfg.penalty * t[0].n_active))
+    uniq = ranked(uniq)
     # a polish may carry a runner-up onto the leader's z (a star's window is the whole
     # stellar velocity range): one answer must not split its resamples between two copies
     uniq = _distinct(uniq, len(uniq))
