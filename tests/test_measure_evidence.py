@@ -367,3 +367,60 @@ def test_a_lone_refuted_reading_is_dropped_when_asked():
     assert len(kept) == 1 and gone == []
     kept, gone = _refuted([(fit, seed)], prep, 64.0, keep_all_if_none=False)
     assert kept == [] and len(gone) == 1 and gone[0]["template"] == "quasar"
+
+
+def _with_emission(spec, z, sigma_kms=88.0):
+    """``spec`` plus narrow [O II], H-beta, [O III], H-alpha, [N II] and [S II] at ``z`` (NIST
+    vacuum wavelengths, from memory) with star-forming ratios (H-alpha/H-beta ~ 3, case B with
+    a little dust; [N II] 6585/H-alpha ~ 0.5; common practice)."""
+    wave, flux = spec.wavelength, spec.flux.copy()
+    for lam, f in ((3727.092, 3.0), (3729.875, 4.0), (4862.683, 2.0), (5008.24, 3.0), (6549.86, 1.0),
+                   (6564.61, 6.0), (6585.27, 3.0), (6718.29, 1.5), (6732.67, 1.1)):
+        c = lam * (1 + z)
+        flux += _gauss_flux(wave, c, c * sigma_kms / C_KMS, f)
+    return Spectrum(wave, flux, spec.sigma)
+
+
+def test_lines_laid_on_a_continuum_break_are_refuted():
+    # The smooth 4000 A break (common practice) of a passive galaxy at z = 0.8127 sits at
+    # 7250 A. Narrow-line galaxy lines of free width fit it as H-alpha/[N II] just redward
+    # (z ~ 0.11, the widths at their limit), and a quasar reading puts N V 1240 on it with
+    # Ly-alpha unfitted (z ~ 4.9). A line stands on the continuum around it, so the first is
+    # refuted by the residual beside it; intergalactic absorption blueward of Ly-alpha
+    # (Faucher-Giguere et al. 2008, from memory) is there in front of any z > 2 source, so
+    # the second is refuted by the missing forest though its fit holds no Ly-alpha.
+    from zsieve.engine.measure import PEDESTAL_MAX, _linesets, _refutation
+    from zsieve.engine.prepare import prepare
+    from zsieve.engine.refine import refine
+
+    z = 0.8127
+    prep = prepare(_break_galaxy(np.random.default_rng(16), z))
+    ls = _linesets(MeasureConfig())
+    em = refine(ls["emission-galaxy"], 0.11, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=64.0)
+    assert em.dchi2 > 1000.0  # the break does fit as lines
+    why = _refutation(em, prep, 64.0)
+    assert why is not None and why["reason"] == "lines on a continuum step or hump"
+    assert abs(why["level"]) > PEDESTAL_MAX
+    qso = refine(ls["quasar"], 4.84, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=64.0)
+    names = [qso.model.ls.names[l] for l in qso.active_lines]
+    assert "Ly-alpha" not in names and "N V 1240" in names and qso.dchi2 > 1000.0
+    why = _refutation(qso, prep, 64.0)
+    assert why is not None and why["reason"] == "no Ly-alpha forest"
+
+
+@pytest.mark.parametrize("z, seed", [(0.112, 4), (0.3127, 3)])
+def test_emission_lines_on_a_break_galaxy_stand_on_their_continuum(z, seed):
+    # The same passive galaxy with narrow emission lines of its own (a composite galaxy,
+    # common practice): the lines stand on the continuum around them, nothing refutes them,
+    # and the measurement finds the z.
+    from zsieve.engine.measure import _linesets, _refutation
+    from zsieve.engine.prepare import prepare
+    from zsieve.engine.refine import refine
+
+    spec = _with_emission(_break_galaxy(np.random.default_rng(seed), z), z)
+    prep = prepare(spec)
+    fit = refine(_linesets(MeasureConfig())["emission-galaxy"], z, prep.wave, prep.resid, prep.ivar,
+                 sigma_inst_kms=64.0)
+    assert abs(fit.z - z) < 1e-4 and _refutation(fit, prep, 64.0) is None
+    res = measure(spec, MeasureConfig(n_resamples=50, seed=1))
+    assert abs(res.z - z) < 0.001 * (1 + z) and res.grade in ("secure", "likely")

@@ -48,7 +48,7 @@ from .prepare import C_KMS
 
 __all__ = ["OII_DOUBLET", "fixed_line_flux", "balmer_test", "BALMER_CASE_B", "doublet_delta_chi2", "forest_transmission", "forest_test", "forest_absent",
            "birge_factor", "companion_test", "COMPANION_ALLOWANCE",
-           "LYA_REST", "FOREST_REST", "FOREST_RED_REST"]
+           "LYA_REST", "FOREST_REST", "FOREST_RED_REST", "sideband_test"]
 
 #: [O II] 3727.09 / 3729.88 vacuum rest wavelengths (NIST ASD; as in linelists/galaxy_emission.ecsv).
 OII_DOUBLET = (3727.092, 3729.875)
@@ -383,3 +383,55 @@ def balmer_test(wave, resid, ivar, z, sigma_kms, *, h_beta: float = 4862.683, h_
     err = math.hypot(ea, BALMER_CASE_B * eb)
     return dict(flux_hb=fb, flux_ha=fa, deficit=float((BALMER_CASE_B * fb - fa) / err))
 
+
+
+def sideband_test(wave, resid, ivar, lo, hi, peak, *, band: float | None = None,
+                  min_pixels: int = 8) -> dict | None:
+    """Does the feature fitted on ``lo .. hi`` (Angstrom) stand on a continuum step?
+
+    An emission line sits on the continuum around it: the continuum-subtracted flux ``resid``
+    averages zero just blueward and just redward of it. A continuum break (the 4000 A break of
+    an old population) that a smooth continuum cannot follow leaves a negative residual on one
+    side and a positive one on the other, and lines of free width fitted there take the step
+    for emission. Compared are the inverse-variance weighted means of ``resid`` over ``band``
+    Angstrom (default: the feature's own extent) on either side, outside ``lo .. hi``.
+
+    A broad hump of residual (a continuum the smooth fit runs under) lifts both sides instead.
+
+    Returns None when a side has fewer than ``min_pixels`` usable pixels; otherwise a dict with
+    the means ``blue``, ``red``, their difference's error ``err``, ``step`` = (red - blue) /
+    ``peak`` (the fitted feature's peak height), ``significance`` = (red - blue) / err, and for
+    the side further from zero its mean over ``peak`` (``level``) and over its own error
+    (``level_significance``).
+
+    >>> import numpy as np
+    >>> w = np.arange(6800.0, 7200.0, 1.0)
+    >>> line = 2.0 * np.exp(-0.5 * ((w - 7000.0) / 5.0) ** 2)
+    >>> flat = sideband_test(w, line, np.full(w.size, 100.0), 6980.0, 7020.0, 2.0)
+    >>> abs(flat["significance"]) < 1
+    True
+    >>> stepped = sideband_test(w, line + np.where(w > 6990.0, 0.5, -0.5), np.full(w.size, 100.0),
+    ...                         6980.0, 7020.0, 2.0)
+    >>> round(stepped["step"], 2), stepped["significance"] > 10, round(stepped["level"], 2)
+    (0.5, True, 0.25)
+    """
+    wave = np.asarray(wave, float)
+    resid = np.asarray(resid, float)
+    ivar = np.asarray(ivar, float)
+    band = float(hi - lo) if band is None else float(band)
+    means = []
+    for a, b in ((lo - band, lo), (hi, hi + band)):
+        i0, i1 = np.searchsorted(wave, (a, b))
+        w, r = ivar[i0:i1], resid[i0:i1]
+        ok = w > 0
+        if ok.sum() < min_pixels:
+            return None
+        sw = float(np.sum(w[ok]))
+        means.append((float(np.sum(w[ok] * r[ok]) / sw), 1.0 / math.sqrt(sw)))
+    (blue, eb), (red, er) = means
+    err = math.hypot(eb, er)
+    side = int(abs(red) > abs(blue))  # the side further from zero
+    level, level_err = means[side]
+    scale = peak if peak > 0 else math.inf
+    return dict(blue=blue, red=red, err=err, step=(red - blue) / scale, significance=(red - blue) / err,
+                level=level / scale, level_significance=level / level_err)

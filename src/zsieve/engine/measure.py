@@ -39,7 +39,8 @@ from ..result import Candidate, FitResult, LineMatch
 from .bootstrap import bootstrap, robust_sigma
 from .config import MeasureConfig
 from .detect import detect_features
-from .evidence import COMPANION_ALLOWANCE, LYA_REST, balmer_test, birge_factor, companion_test, doublet_delta_chi2, forest_absent, forest_test
+from .evidence import (COMPANION_ALLOWANCE, LYA_REST, balmer_test, birge_factor, companion_test, doublet_delta_chi2,
+                       forest_absent, forest_test, sideband_test)
 from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
 from .prepare import C_KMS, LoglamMap, flux_scale, prepare, range_mask, sky_ranges
@@ -575,13 +576,25 @@ def _refuted(fits, prep, sig_inst, max_excess: float = 3.0, keep_all_if_none: bo
     return keep, gone
 
 
+#: An emission reading is refuted when the continuum-subtracted flux beside its strongest line
+#: complex (:func:`_line_step`) stands, on one side, above a third of the lines' peak and more
+#: than 5 sigma from zero: lines of free width laid on a continuum break or a broad residual
+#: hump the smooth continuum runs under. A genuine line stands on the continuum around it.
+#: Checked on 1200 mocks of a seed the benchmarks do not use (zsieve.simulate, seed 9): of 344
+#: right emission fits none reach |level| > 0.2 with > 5 sigma (their 99.5% points: 0.41 and
+#: 3.4 sigma, apart); of 2402 wrong ones 23 pass both limits, absorption galaxies and quasars.
+PEDESTAL_MAX = 0.3
+PEDESTAL_SIGNIFICANCE = 5.0
+
+
 def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
     """The record of why reading ``f`` is refuted (each test's statistic above
-    ``max_excess``), or None: Ly-alpha at z > 2 whose forest is absent (:func:`forest_absent`:
+    ``max_excess``), or None: Ly-alpha (or any quasar reading) at z > 2 whose forest is absent (:func:`forest_absent`:
     neither its depressed mean nor its roughness, or smoother than any forest); emission-galaxy
     readings with H-beta but no fitted H-alpha where case-B recombination requires one
-    (:func:`balmer_test`); quasar readings whose strong broad lines are missing beside the
-    strongest (:func:`companion_test`)."""
+    (:func:`balmer_test`); emission-galaxy readings whose strongest lines stand on a continuum
+    step or hump (:func:`_line_step`, ``PEDESTAL_MAX``); quasar readings whose strong broad lines
+    are missing beside the strongest (:func:`companion_test`)."""
     names = [f.model.ls.names[l] for l in f.active_lines]
     # only for a reading resting on one or two lines with H-alpha missing from the fit: a
     # fitted H-alpha, even weaker than case B (flux calibration, blends), supports it, and a
@@ -594,7 +607,14 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
         t = balmer_test(prep.wave, prep.resid, prep.ivar, f.z, sv, h_beta=hb, h_alpha=ha) if ha else None
         if t is not None and t["deficit"] > max_excess:
             return dict(z=float(f.z), template=f.cls, reason="H-alpha weaker than case B allows", **t)
-    if f.z > 2.0 and "Ly-alpha" in names:
+    if f.cls == "emission-galaxy":
+        t = _line_step(f, prep)
+        if t is not None and abs(t["level"]) > PEDESTAL_MAX and abs(t["level_significance"]) > PEDESTAL_SIGNIFICANCE:
+            return dict(z=float(f.z), template=f.cls, reason="lines on a continuum step or hump", **t)
+    # the intergalactic forest absorbs blueward of Ly-alpha in front of any source at z > 2:
+    # tested where the fit uses Ly-alpha, and for every quasar reading (whose fit may have
+    # put N V, or no line at all, where Ly-alpha should be)
+    if f.z > 2.0 and ("Ly-alpha" in names or f.cls == "quasar"):
         t = forest_test(prep.wave, prep.flux, prep.ivar, f.z)
         if forest_absent(t, max_excess):
             return dict(z=float(f.z), template=f.cls, reason="no Ly-alpha forest", **t)
@@ -603,6 +623,36 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
         if t is not None and t["deficit"] > max_excess:
             return dict(z=float(f.z), template=f.cls, reason="broad companion line missing", **t)
     return None
+
+
+def _line_step(f, prep, window_sigma: float = 5.0):
+    """:func:`sideband_test` around the strongest line group of an emission fit: the lines'
+    windows (``window_sigma`` each side) merged into complexes, the complex holding the group
+    of highest S/N in the joint fit, with bands as wide as the complex on each side (shortened
+    where another complex begins). None when not measurable."""
+    act = np.asarray(f.active_lines, dtype=int)
+    if act.size == 0:
+        return None
+    m = f.model
+    cen = m.centres(f.z)[act]
+    half = window_sigma * cen * m._sigma_v(f.width_kms, f.broad_scale)[act] / C_KMS
+    gs = group_snr(f)
+    lead = int(np.argmax(gs[m.col_of_line[act]] * np.sign(f.amps[m.col_of_line[act]])))
+    order = np.argsort(cen - half)
+    lo_s, hi_s = (cen - half)[order], (cen + half)[order]
+    # complexes: runs of overlapping windows
+    start = np.concatenate(([True], lo_s[1:] > np.maximum.accumulate(hi_s)[:-1]))
+    label = np.cumsum(start) - 1
+    k = label[int(np.flatnonzero(order == lead)[0])]
+    lo, hi = float(lo_s[label == k].min()), float(hi_s[label == k].max())
+    prev = hi_s[label < k].max() if (label < k).any() else -np.inf
+    nxt = lo_s[label > k].min() if (label > k).any() else np.inf
+    band = min(hi - lo, lo - prev, nxt - hi)
+    sel = (prep.wave >= lo) & (prep.wave <= hi)
+    if band <= 0 or not sel.any():
+        return None
+    peak = float(np.max(np.abs(f.model_flux(prep.wave[sel]))))
+    return sideband_test(prep.wave, prep.resid, prep.ivar, lo, hi, peak, band=band)
 
 
 #: Broad lines testable as missing companions although weaker than ``min_strength``, with
