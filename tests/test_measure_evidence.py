@@ -424,3 +424,35 @@ def test_emission_lines_on_a_break_galaxy_stand_on_their_continuum(z, seed):
     assert abs(fit.z - z) < 1e-4 and _refutation(fit, prep, 64.0) is None
     res = measure(spec, MeasureConfig(n_resamples=50, seed=1))
     assert abs(res.z - z) < 0.001 * (1 + z) and res.grade in ("secure", "likely")
+
+
+def test_ca_k_read_on_the_galaxys_h_line_is_refuted():
+    # Ca II K (3934.78) and H (3969.59 A, NIST vacuum, from memory) come together: H is at
+    # least half of K, their oscillator-strength ratio 0.33/0.68 in the optically thin limit
+    # (NIST ASD, from memory), more when saturated or blended with H-epsilon. A reading that
+    # puts K on the galaxy's H (z' = (1 + z) 3969.59 / 3934.78 - 1) leaves its own H on bare
+    # continuum, and is refuted; the galaxy's own reading is not.
+    from zsieve.engine.evidence import CA_HK_FLOOR, ratio_floor_test
+    from zsieve.engine.measure import _linesets, _refutation
+    from zsieve.engine.prepare import prepare
+    from zsieve.engine.refine import refine
+
+    z = 0.31
+    prep = prepare(_break_galaxy(np.random.default_rng(21), z))
+    ls = _linesets(MeasureConfig())["absorption-galaxy"]
+    alias = (1 + z) * 3969.591 / 3934.777 - 1
+    fit = refine(ls, alias, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=64.0, z_tol=100.0 / C_KMS)
+    assert "Ca II K" in [fit.model.ls.names[l] for l in fit.active_lines]
+    why = _refutation(fit, prep, 64.0)
+    assert why is not None and why["reason"] == "Ca II H weaker than Ca II K allows"
+    true = refine(ls, z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=64.0)
+    assert abs(true.z - z) < 1e-3 and _refutation(true, prep, 64.0) is None
+    # the floor itself: an optically thin pair (H = K / 2) passes, K alone does not
+    w = _grid(4500.0, 6000.0)
+    k, h = 3934.777 * (1 + z), 3969.591 * (1 + z)
+    s = k * 300.0 / C_KMS
+    ivar = np.full(w.size, 400.0)
+    thin = -_gauss_flux(w, k, s, 8.0) - _gauss_flux(w, h, s, 4.0)
+    assert ratio_floor_test(w, thin, ivar, (k, h), (s, s), CA_HK_FLOOR, sign=-1.0)["deficit"] < 1.0
+    lone = -_gauss_flux(w, k, s, 8.0)
+    assert ratio_floor_test(w, lone, ivar, (k, h), (s, s), CA_HK_FLOOR, sign=-1.0)["deficit"] > 3.0

@@ -48,7 +48,7 @@ from .prepare import C_KMS
 
 __all__ = ["OII_DOUBLET", "fixed_line_flux", "balmer_test", "BALMER_CASE_B", "doublet_delta_chi2", "forest_transmission", "forest_test", "forest_absent",
            "birge_factor", "companion_test", "COMPANION_ALLOWANCE",
-           "LYA_REST", "FOREST_REST", "FOREST_RED_REST", "sideband_test"]
+           "LYA_REST", "FOREST_REST", "FOREST_RED_REST", "sideband_test", "ratio_floor_test", "CA_HK_FLOOR"]
 
 #: [O II] 3727.09 / 3729.88 vacuum rest wavelengths (NIST ASD; as in linelists/galaxy_emission.ecsv).
 OII_DOUBLET = (3727.092, 3729.875)
@@ -365,24 +365,51 @@ def fixed_line_flux(wave, resid, ivar, centre, sigma_A, *, half_width: float = 4
     return float(a[0]), float(math.sqrt(cov[0, 0]))
 
 
+def ratio_floor_test(wave, resid, ivar, centres, sigmas_A, floor, *, sign: float = 1.0,
+                     min_snr: float = 5.0) -> dict | None:
+    """Is the second of two lines at least ``floor`` times as strong as the first?
+
+    ``centres`` and ``sigmas_A`` (Angstrom) place the ``(lead, follow)`` pair; each flux is
+    measured by :func:`fixed_line_flux` (``sign`` -1 for absorption lines, whose fluxes are
+    negative). Returns None when the lead is not measured at S/N >= ``min_snr`` or the
+    follower's pixels are not observed. Otherwise a dict with both fluxes and ``deficit`` =
+    (floor F(lead) - F(follow)) / its error: > 3 means the follower is missing, evidence
+    against the reading that implies it.
+
+    >>> import numpy as np
+    >>> w = np.arange(4800.0, 6700.0, 1.0)
+    >>> g = lambda c, f: f / (np.sqrt(2 * np.pi) * 3.0) * np.exp(-0.5 * ((w - c) / 3.0) ** 2)
+    >>> t = ratio_floor_test(w, g(4862.7, 10.0), np.full(w.size, 100.0), (4862.7, 6564.6), (3.0, 3.0), 2.86)
+    >>> round(t["flux_lead"], 2), t["deficit"] > 3
+    (10.0, True)
+    """
+    (fl, el), (ff, ef) = (fixed_line_flux(wave, resid, ivar, c, s) for c, s in zip(centres, sigmas_A))
+    fl, ff = sign * fl, sign * ff
+    if not (np.isfinite(fl) and np.isfinite(ff)) or fl < min_snr * el:
+        return None
+    err = math.hypot(ef, floor * el)
+    return dict(flux_lead=fl, flux_follow=ff, deficit=float((floor * fl - ff) / err))
+
+
 def balmer_test(wave, resid, ivar, z, sigma_kms, *, h_beta: float = 4862.683, h_alpha: float = 6564.614,
                 min_snr: float = 5.0) -> dict | None:
     """Is H-alpha as strong as H-beta at ``z`` requires (>= BALMER_CASE_B times)?
 
     Returns None when H-beta is not measured at S/N >= ``min_snr`` or H-alpha's pixels are not
     observed. Otherwise ``deficit`` = (BALMER_CASE_B F(Hb) - F(Ha)) / its error: > 3 means
-    H-alpha is missing, evidence against the H-beta reading.
+    H-alpha is missing, evidence against the H-beta reading (:func:`ratio_floor_test`).
     """
-    out = {}
-    for key, lam in (("hb", h_beta), ("ha", h_alpha)):
-        c = lam * (1.0 + z)
-        out[key] = fixed_line_flux(wave, resid, ivar, c, c * sigma_kms / C_KMS)
-    (fb, eb), (fa, ea) = out["hb"], out["ha"]
-    if not (np.isfinite(fb) and np.isfinite(fa)) or fb < min_snr * eb:
+    c = np.array([h_beta, h_alpha]) * (1.0 + z)
+    t = ratio_floor_test(wave, resid, ivar, c, c * sigma_kms / C_KMS, BALMER_CASE_B, min_snr=min_snr)
+    if t is None:
         return None
-    err = math.hypot(ea, BALMER_CASE_B * eb)
-    return dict(flux_hb=fb, flux_ha=fa, deficit=float((BALMER_CASE_B * fb - fa) / err))
+    return dict(flux_hb=t["flux_lead"], flux_ha=t["flux_follow"], deficit=t["deficit"])
 
+
+#: Least Ca II H / K equivalent-width ratio: the optically thin limit, the ratio of their
+#: oscillator strengths (0.33 / 0.68; NIST ASD, from memory); saturation raises it towards 1,
+#: and in galaxies H-epsilon blends with H.
+CA_HK_FLOOR = 0.5
 
 
 def sideband_test(wave, resid, ivar, lo, hi, peak, *, band: float | None = None,

@@ -40,7 +40,7 @@ from .bootstrap import bootstrap, robust_sigma
 from .config import MeasureConfig
 from .detect import detect_features
 from .evidence import (COMPANION_ALLOWANCE, LYA_REST, balmer_test, birge_factor, companion_test, doublet_delta_chi2,
-                       forest_absent, forest_test, sideband_test)
+                       forest_absent, forest_test, ratio_floor_test, sideband_test, CA_HK_FLOOR)
 from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
 from .prepare import C_KMS, LoglamMap, flux_scale, prepare, range_mask, sky_ranges
@@ -592,7 +592,8 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
     ``max_excess``), or None: Ly-alpha (or any quasar reading) at z > 2 whose forest is absent (:func:`forest_absent`:
     neither its depressed mean nor its roughness, or smoother than any forest); emission-galaxy
     readings with H-beta but no fitted H-alpha where case-B recombination requires one
-    (:func:`balmer_test`); emission-galaxy readings whose strongest lines stand on a continuum
+    (:func:`balmer_test`); absorption-galaxy readings with Ca II K but Ca II H below half of it
+    (``CA_HK_FLOOR``); emission-galaxy readings whose strongest lines stand on a continuum
     step or hump (:func:`_line_step`, ``PEDESTAL_MAX``); quasar readings whose strong broad lines
     are missing beside the strongest (:func:`companion_test`)."""
     names = [f.model.ls.names[l] for l in f.active_lines]
@@ -607,6 +608,16 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
         t = balmer_test(prep.wave, prep.resid, prep.ivar, f.z, sv, h_beta=hb, h_alpha=ha) if ha else None
         if t is not None and t["deficit"] > max_excess:
             return dict(z=float(f.z), template=f.cls, reason="H-alpha weaker than case B allows", **t)
+    if f.cls == "absorption-galaxy" and "Ca II K" in names and "Ca II H" in f.model.ls.names:
+        # Ca II K implies Ca II H at >= half its strength (a reading that puts K on the
+        # galaxy's H, or on H8, leaves its own H on bare continuum)
+        ls = f.model.ls
+        pair = [ls.names.index("Ca II K"), ls.names.index("Ca II H")]
+        c = f.model.centres(f.z)[pair]
+        sig = c * f.model._sigma_v(f.width_kms, f.broad_scale)[pair] / C_KMS
+        t = ratio_floor_test(prep.wave, prep.resid, prep.ivar, c, sig, CA_HK_FLOOR, sign=-1.0)
+        if t is not None and t["deficit"] > max_excess:
+            return dict(z=float(f.z), template=f.cls, reason="Ca II H weaker than Ca II K allows", **t)
     if f.cls == "emission-galaxy":
         t = _line_step(f, prep)
         if t is not None and abs(t["level"]) > PEDESTAL_MAX and abs(t["level_significance"]) > PEDESTAL_SIGNIFICANCE:
