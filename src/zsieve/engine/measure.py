@@ -589,8 +589,9 @@ PEDESTAL_SIGNIFICANCE = 5.0
 
 def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
     """The record of why reading ``f`` is refuted (each test's statistic above
-    ``max_excess``), or None: Ly-alpha (or any quasar reading) at z > 2 whose forest is absent (:func:`forest_absent`:
-    neither its depressed mean nor its roughness, or smoother than any forest); emission-galaxy
+    ``max_excess``), or None: Ly-alpha (or any quasar reading) at z > 2 whose forest is
+    absent (:func:`forest_absent`: neither its depressed mean nor its roughness, or smoother
+    than any forest); emission-galaxy
     readings with H-beta but no fitted H-alpha where case-B recombination requires one
     (:func:`balmer_test`); absorption-galaxy readings with Ca II K but Ca II H below half of it
     (``CA_HK_FLOOR``); emission-galaxy readings whose strongest lines stand on a continuum
@@ -647,8 +648,8 @@ def _line_step(f, prep, window_sigma: float = 5.0):
     m = f.model
     cen = m.centres(f.z)[act]
     half = window_sigma * cen * m._sigma_v(f.width_kms, f.broad_scale)[act] / C_KMS
-    gs = group_snr(f)
-    lead = int(np.argmax(gs[m.col_of_line[act]] * np.sign(f.amps[m.col_of_line[act]])))
+    gs = _group_snr_by_group(f)  # cached on the fit: the flags use it again
+    lead = int(np.argmax([gs.get(int(m.ls.group[l]), 0.0) for l in act]))
     order = np.argsort(cen - half)
     lo_s, hi_s = (cen - half)[order], (cen + half)[order]
     # complexes: runs of overlapping windows
