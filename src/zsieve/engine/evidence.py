@@ -1,6 +1,6 @@
 """Evidence beyond the line count: doublet shape, Ly-alpha forest, per-line consistency.
 
-Three checks the joint line fit does not make by itself (design: "one strong line alone is
+Checks the joint line fit does not make by itself (design: "one strong line alone is
 ambiguous ... use the doublet shape, neighbouring lines that should appear, the continuum
 break"):
 
@@ -16,6 +16,10 @@ break"):
 * :func:`balmer_test` -- a line read as H-beta implies H-alpha at least 2.86 times as strong
   (case B recombination, T = 10^4 K; Osterbrock & Ferland 2006, from memory; dust only raises
   the ratio). H-alpha missing where its pixels are observed is evidence against H-beta.
+* :func:`ratio_floor_test` -- the floor on a pair's flux ratio behind :func:`balmer_test`, and
+  Ca II H at no less than half of Ca II K (``CA_HK_FLOOR``, their oscillator strengths).
+* :func:`sideband_test` -- a line stands on the continuum around it; lines fitted on a
+  continuum break or a broad residual hump do not.
 * :func:`birge_factor` -- the reduced chi-square of the per-line redshifts about their mean
   (Birge 1932, Phys. Rev. 40, 207: the "Birge ratio"); when the lines disagree with each other
   more than their errors allow (template mismatch, blends), the error of the mean is too small
