@@ -751,7 +751,7 @@ def _xcorr_peak_fit(xc, best, uniq, linesets, prep, sig_inst, cfg):
     s = Seed(float(top.z), top.template_class, "xcorr", score=0.0, r_tdr=float(top.r_tdr))
     zt = STAR_MAX_KMS / C_KMS if s.cls == "star" else None
     fit = refine(linesets[s.cls], s.z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
-                 scan=True, polish=False)
+                 scan=True, polish=False, good_cs=prep.good_cs)
     if not fit.ok:
         return []
     return [(fit, s)]
