@@ -275,12 +275,17 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         return out
 
     # ---------------------------------------------------------------- refine
+    done = {}  # star proposals beyond the velocity range start from the same clipped z
+
     def fit_seed(s):
         z0 = float(np.clip(s.z, star_lo, -star_lo)) if s.cls == "star" else s.z
-        # no formal error yet: most of these fits are dropped below (with_formal_error adds it)
-        fit = refine(linesets[s.cls], z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst,
-                     z_tol=_z_window(s, cfg), scan=s.origin not in ("lines", "lone") or s.cls == "quasar",
-                     polish=False, good_cs=prep.good_cs, error=False)
+        z_tol, scan = _z_window(s, cfg), s.origin not in ("lines", "lone") or s.cls == "quasar"
+        key = (s.cls, z0, z_tol, scan)
+        if key not in done:
+            # no formal error yet: most of these fits are dropped below (with_formal_error adds it)
+            done[key] = refine(linesets[s.cls], z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst,
+                               z_tol=z_tol, scan=scan, polish=False, good_cs=prep.good_cs, error=False)
+        fit = done[key]
         if not fit.ok or fit.n_active == 0:
             return None
         if s.cls == "star" and abs(fit.z) > STAR_MAX_KMS / C_KMS * 1.0001:
