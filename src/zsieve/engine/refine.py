@@ -633,7 +633,8 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         return solve(p)[0]
 
     def jac(p):
-        # variable-projection Jacobian with the amplitudes held (Kaufman's approximation)
+        # the model's derivatives with the amplitudes held; projecting out the amplitudes'
+        # response (Kaufman 1975) was measured: fewer steps on blends, 9% more work overall
         z, wk, bs = unpack(p)
         a = solve(p)[1]
         dz, dw, db = model.model_derivs(z, wk, bs, a)
@@ -666,10 +667,23 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     for _ in range(6):  # damped Gauss-Newton with the bounds enforced by clipping
         J = jac(p)
         r = fun(p)
-        try:
-            step = np.linalg.lstsq(J, -r, rcond=None)[0]
-        except np.linalg.LinAlgError:
+        # the least-squares step from the normal equations of the two or three parameters,
+        # columns scaled to unit norm (their units differ by orders of magnitude); a zero
+        # column (the width derivative at zero width) takes no step, as in the minimum-norm
+        # solution
+        nrm = np.sqrt(np.einsum("ij,ij->j", J, J))
+        live = nrm > 0
+        if not live.any():
             break
+        Js = J[:, live] / nrm[live]
+        sl = _spd_solve(Js.T @ Js, -(Js.T @ r))
+        if sl is None:  # (near-)collinear columns: the least-squares solver's minimum-norm step
+            try:
+                sl = np.linalg.lstsq(Js, -r, rcond=None)[0]
+            except np.linalg.LinAlgError:
+                break
+        step = np.zeros(p.size)
+        step[live] = sl / nrm[live]
         for damp in (1.0, 0.5, 0.25):
             q = np.clip(p + damp * step, lb_a, ub_a)
             cq = chi2(q)
