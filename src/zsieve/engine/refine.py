@@ -656,8 +656,12 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         n_scan = int(np.clip(2 * z_tol / (1 + z0) * C_KMS / (0.7 * sv_min), 9, 41))
         zs = z0 + np.linspace(-z_tol, z_tol, n_scan) * 0.95
         _, wk0, bs0 = unpack(p0)
-        # all scan points at once (normal equations from the sparse line windows)
-        i_best, g_best = model.scan_best(rr, zs, wk0, bs0)
+        # all scan points at once (normal equations from the sparse line windows), on windows
+        # of WINDOW_SIGMA at the scan's own widths: the fit's windows are sized for the widest
+        # lines it may reach (broad lines at 2.5 times their typical width), two to three times
+        # the pixels the profiles at the starting widths reach
+        sm = LineModel(ls, wave, ivar, sigma_inst_kms, z0, wk0, broad_scale=bs0, z_slack=z_tol, good_cs=good_cs)
+        i_best, g_best = sm.scan_best(resid[sm.pix], zs, wk0, bs0)
         chi0 = chi2(p0)
         if yy - g_best < chi0:
             p0[0] = zs[i_best]
