@@ -8,7 +8,9 @@ each resample the whole decision is repeated in batch:
    applied to the noise matrix in one pass);
 2. every shortlisted candidate's line model is re-fitted by a linearised least-squares step in
    (amplitudes, z) that is the same matrix for all resamples (one matrix product for all N),
-   giving each resample's chi-square improvement (the candidate's evidence) and z;
+   giving each resample's chi-square improvement (the candidate's evidence) and z; it sees
+   the pixels within ``WINDOW_SIGMA`` of the candidate's active lines at its fitted z and
+   widths, and only those pixels are resampled;
 3. for the candidate each resample adopts, one more vectorised Gauss-Newton step in z with the
    profiles re-evaluated at that resample's own z and amplitudes (non-linear correction);
 4. each resample adopts the candidate with the best penalised evidence, or none when no
@@ -108,10 +110,15 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
     resample can adopt (:func:`hopeless`) get probability 0 without being resampled."""
     nf = len(fits)
     skip = hopeless(fits, penalty)
+    # each candidate's linearised fit sees only the pixels within WINDOW_SIGMA of its active
+    # lines at its fitted z and widths (a third or less of its model's windows, which are
+    # sized for the widest lines and the whole z range the fit could reach)
+    win = [None if s or not np.any(f.amps > 0) or f.model.pix.size == 0 else _active_windows(f)
+           for f, s in zip(fits, skip)]
     if noise is None and not keep_resid:
         # only the pixels the candidates' line models see are needed: draw those, and the rest
         # of each continuum block as one Gaussian sum (same distribution, far fewer draws)
-        U, R = _resample_on(prep, [f for f, s in zip(fits, skip) if not s], n, rng)
+        U, R = _resample_on(prep, [f.model.pix[w[1]] for f, w in zip(fits, win) if w is not None], n, rng)
     else:
         eps = resample_noise(prep, n, rng) if noise is None else noise
         c_eps = continuum_batch(eps, prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
@@ -123,18 +130,19 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
     for k, fit in enumerate(fits):  # over shortlisted candidates (a handful)
         m = fit.model
         act = np.flatnonzero(fit.amps > 0)
-        if act.size == 0 or m.pix.size == 0 or skip[k]:
+        if win[k] is None:
             continue
-        G = m.design(fit.z, fit.width_kms, fit.broad_scale)
-        dz = m.model_derivs(fit.z, fit.width_kms, fit.broad_scale, fit.amps)[0]  # = D @ amps
+        keep = win[k][1]
+        G = m.design(fit.z, fit.width_kms, fit.broad_scale)[keep]
+        dz = m.model_derivs(fit.z, fit.width_kms, fit.broad_scale, fit.amps)[0][keep]  # = D @ amps
         J = np.hstack([G[:, act], dz[:, None]])
-        WJ = J * m.w[:, None]
+        WJ = J * m.w[keep][:, None]
         F = J.T @ WJ
         try:
             Finv = np.linalg.inv(F)
         except np.linalg.LinAlgError:
             Finv = np.linalg.pinv(F)
-        Rm = _rows_at(R, U, m.pix)
+        Rm = _rows_at(R, U, m.pix[keep])
         # (n, A+1); single-precision resamples in a single-precision product (sums of a few
         # hundred terms: relative error ~1e-6, far below the resampling noise)
         b = (Rm @ WJ.astype(Rm.dtype)).astype(float)
@@ -150,7 +158,7 @@ def bootstrap(prep: Prepared, fits: list[CandidateFit], *, n: int, rng, penalty:
     top = score[best, np.arange(n)]
     choice = np.where(top >= score_min, best, -1)
     if nf and amps0 is not None:
-        zfit[0] = _newton_z(fits[0], R0, zfit[0], amps0)
+        zfit[0] = _newton_z(fits[0], R0, zfit[0], amps0, win[0])
     prob = np.array([np.mean(choice == k) for k in range(nf)])
     return BootstrapResult(n, choice, prob, float(np.mean(choice < 0)), zfit[0] if nf else np.zeros(0),
                            zfit, score, R if keep_resid else None)
@@ -167,8 +175,8 @@ def _rows_at(R, U, pix):
     return R[:, ix]
 
 
-def _resample_on(prep: Prepared, fits, n: int, rng):
-    """Resampled residuals ``(U, R)`` on the union ``U`` of the fits' window pixels only.
+def _resample_on(prep: Prepared, pixels, n: int, rng):
+    """Resampled residuals ``(U, R)`` on the union ``U`` of the pixel sets ``pixels`` only.
 
     Each resample is ``f* = f + eps`` minus the change ``c(eps)`` of the (fixed-selection,
     linear) continuum. ``c(eps)`` needs only each block's weighted noise sum: the part from
@@ -182,7 +190,7 @@ def _resample_on(prep: Prepared, fits, n: int, rng):
     and the continuum's interpolation between block centres are sparse products (a pixel
     belongs to one block and is interpolated from two).
     """
-    pix = [f.model.pix for f in fits if f.model.pix.size]
+    pix = [p for p in pixels if p.size]
     U = np.unique(np.concatenate(pix)) if pix else np.zeros(0, dtype=int)
     block, w, sw, M = continuum_operator(prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
     nblk = sw.size
@@ -206,17 +214,35 @@ def _resample_on(prep: Prepared, fits, n: int, rng):
     return U, eps.T
 
 
-def _newton_z(fit: CandidateFit, R, z_n, amps):
+def _active_windows(fit: CandidateFit):
+    """``(use, keep, lo, hi)``: the lines of the fit's active columns, the pixels within
+    WINDOW_SIGMA of any of them at the fitted z and widths (indices into ``fit.model.pix``),
+    and each line's slice ``lo:hi`` of those pixels."""
+    m = fit.model
+    act = np.flatnonzero(fit.amps > 0)
+    use = np.flatnonzero(m.col_of_line >= 0)
+    use = use[np.isin(m.col_of_line[use], act)]
+    sv = m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
+    mu0 = (1 + fit.z) * m.ls.wave[use] * (1 + m.ls.offset_kms[use] / C_KMS)
+    lo = np.searchsorted(m.x, mu0 - WINDOW_SIGMA * mu0 * sv)
+    hi = np.searchsorted(m.x, mu0 + WINDOW_SIGMA * mu0 * sv)
+    n1 = m.x.size + 1
+    inside = np.cumsum(np.bincount(lo, minlength=n1) - np.bincount(hi, minlength=n1))[:-1] > 0
+    cs = np.concatenate(([0], np.cumsum(inside)))
+    return use, np.flatnonzero(inside), cs[lo], cs[hi]
+
+
+def _newton_z(fit: CandidateFit, R, z_n, amps, windows):
     """One Gauss-Newton step in z per resample, profiles at each resample's own z (vectorised).
 
-    ``R`` holds the resampled residuals on the fit's window pixels (``fit.model.pix``)."""
+    ``R`` holds the resampled residuals on the pixels of ``windows`` (:func:`_active_windows`
+    of the fit): the active lines' own windows, outside which the derivative is 0."""
     m = fit.model
     act, a_n = amps
     a_full = np.zeros((R.shape[0], fit.amps.size))
     a_full[:, act] = np.clip(a_n, 0.0, None)
     ls = m.ls
-    use = np.flatnonzero(m.col_of_line >= 0)
-    use = use[np.isin(m.col_of_line[use], act)]
+    use, keep, lo, hi = windows
     if use.size == 0:
         return z_n
     sv = m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
@@ -224,18 +250,7 @@ def _newton_z(fit: CandidateFit, R, z_n, amps):
     mu = (1 + z_n)[:, None] * base[None, :]  # (n, L)
     s = mu * sv[None, :]
     coef = a_full[:, m.col_of_line[use]] * (ls.sign[use] * ls.ratio[use])[None, :]  # (n, L)
-    # each line only on its own window (+/- WINDOW_SIGMA sigma at the data's z); the step's
-    # sums need only the pixels of the active lines' windows (elsewhere the derivative is 0)
-    mu0 = (1 + fit.z) * base
-    lo = np.searchsorted(m.x, mu0 - WINDOW_SIGMA * mu0 * sv)
-    hi = np.searchsorted(m.x, mu0 + WINDOW_SIGMA * mu0 * sv)
-    n1 = m.x.size + 1
-    inside = np.cumsum(np.bincount(lo, minlength=n1) - np.bincount(hi, minlength=n1))[:-1] > 0
-    keep = np.flatnonzero(inside)
-    cs = np.concatenate(([0], np.cumsum(inside)))
-    lo, hi = cs[lo], cs[hi]
     x, w = m.x[keep], m.w[keep]
-    R = R[:, keep]
     model = np.zeros((R.shape[0], x.size))
     dmod = np.zeros_like(model)
     for j in range(use.size):  # over lines (tens); each a vectorised (n, window) block
