@@ -30,7 +30,7 @@ fraction (|dz| > 0.001(1+z), quasars 0.01(1+z), as in accuracy.py).
 
 Usage::
 
-    python tests/benchmarks/speed.py [--n 40] [--seed 11] [--workers 2] [--skip-direct]
+    python tests/benchmarks/speed.py [--n 40] [--seed 11] [--workers 2] [--skip-direct] [--rounds 1]
 
 Targets (issue 3): with 200 resamples at least the specutils route's throughput and >= 20
 spectra/s on 2 cores; with resampling off >= 10x the specutils route; accuracy at least the
@@ -257,6 +257,10 @@ def main(argv=None):
     ap.add_argument("--resolution", type=float, default=2000.0, help="resolving power of the mocks")
     ap.add_argument("--skip-direct", action="store_true", help="leave out the slow direct route")
     ap.add_argument("--routes", default="", help="comma-separated substrings selecting routes")
+    ap.add_argument("--rounds", type=int, default=1,
+                    help="run all routes this many times, interleaved, and report medians (a shared "
+                         "machine drifts between routes run minutes apart; the CPU ratio of each "
+                         "round is printed too)")
     args = ap.parse_args(argv)
 
     from zsieve.simulate import mock_set
@@ -272,19 +276,23 @@ def main(argv=None):
     print(f"{args.n} mock spectra ({', '.join(CLASSES)}), seed {args.seed}, R = {args.resolution:g}, "
           f"{specs[0].n_pix} pixels each; {args.workers} worker processes; z range {Z_LO}..{Z_HI}")
     ctx = mp.get_context("fork")
-    rows = {}
+    runs = {name: [] for name in names}
     with ctx.Pool(args.workers) as pool:
         pool.map(_warm, range(args.workers))
-        for name in names:
-            t0 = time.perf_counter()
-            out = pool.map(_task, [(name, s, res_kms) for s in specs], chunksize=1)
-            wall = time.perf_counter() - t0
-            zs = [o[0] for o in out]
-            cpu = sum(o[1] for o in out)
-            errs = [o[2] for o in out if o[2]]
-            rows[name] = dict(rate=args.n / wall, cpu_ms=1e3 * cpu / args.n, acc=_accuracy(zs, truth),
-                              errors=errs, no_z=name.startswith("bare FFTs"))
-            print(f"  done: {name:34s} {wall:7.1f} s wall", file=sys.stderr, flush=True)
+        for k in range(max(1, args.rounds)):
+            for name in names:
+                t0 = time.perf_counter()
+                out = pool.map(_task, [(name, s, res_kms) for s in specs], chunksize=1)
+                wall = time.perf_counter() - t0
+                zs = [o[0] for o in out]
+                cpu = sum(o[1] for o in out)
+                errs = [o[2] for o in out if o[2]]
+                runs[name].append(dict(rate=args.n / wall, cpu_ms=1e3 * cpu / args.n, acc=_accuracy(zs, truth),
+                                       errors=errs, no_z=name.startswith("bare FFTs")))
+                print(f"  done: {name:34s} {wall:7.1f} s wall (round {k + 1})", file=sys.stderr, flush=True)
+    # medians over the rounds (the answers, hence the accuracy, are the same in every round)
+    rows = {name: dict(r[0], rate=float(np.median([x["rate"] for x in r])),
+                       cpu_ms=float(np.median([x["cpu_ms"] for x in r]))) for name, r in runs.items()}
 
     ref = "specutils route (fft)" if "specutils route (fft)" in rows else None
     print()
@@ -305,7 +313,11 @@ def main(argv=None):
         print("Ratios of CPU time per spectrum (route / zsieve; steadier than wall-clock rates):")
         for name in rows:
             if name.startswith("zsieve"):
-                print(f"  {name:34s} {rows[ref]['cpu_ms'] / rows[name]['cpu_ms']:8.2f}x the specutils (fft) route")
+                line = f"  {name:34s} {rows[ref]['cpu_ms'] / rows[name]['cpu_ms']:8.2f}x the specutils (fft) route"
+                if len(runs[name]) > 1:
+                    per = [a["cpu_ms"] / b["cpu_ms"] for a, b in zip(runs[ref], runs[name])]
+                    line += "  (rounds: " + ", ".join(f"{x:.2f}x" for x in per) + ")"
+                print(line)
     return 0
 
 
