@@ -37,7 +37,7 @@ import numpy as np
 from scipy import sparse
 
 from .prepare import Prepared, continuum_batch, continuum_operator
-from .refine import SQRT2PI, WINDOW_SIGMA, CandidateFit
+from .refine import SQRT2PI, WINDOW_SIGMA, CandidateFit, covered
 from .prepare import C_KMS
 
 __all__ = ["BootstrapResult", "resample_noise", "bootstrap", "robust_sigma", "hopeless", "HOPELESS_SIGMA"]
@@ -223,11 +223,10 @@ def _active_windows(fit: CandidateFit):
     use = np.flatnonzero(m.col_of_line >= 0)
     use = use[np.isin(m.col_of_line[use], act)]
     sv = m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
-    mu0 = (1 + fit.z) * m.ls.wave[use] * (1 + m.ls.offset_kms[use] / C_KMS)
+    mu0 = m.centres(fit.z)[use]
     lo = np.searchsorted(m.x, mu0 - WINDOW_SIGMA * mu0 * sv)
     hi = np.searchsorted(m.x, mu0 + WINDOW_SIGMA * mu0 * sv)
-    n1 = m.x.size + 1
-    inside = np.cumsum(np.bincount(lo, minlength=n1) - np.bincount(hi, minlength=n1))[:-1] > 0
+    inside = covered(lo, hi, m.x.size)
     cs = np.concatenate(([0], np.cumsum(inside)))
     return use, np.flatnonzero(inside), cs[lo], cs[hi]
 

@@ -43,7 +43,7 @@ from .detect import lm_bounded
 from .prepare import C_KMS, good_cumsum
 from .identify import LineSet
 
-__all__ = ["LineModel", "CandidateFit", "refine", "with_formal_error", "line_table", "WIDTH_LIMITS_KMS"]
+__all__ = ["LineModel", "CandidateFit", "covered", "refine", "with_formal_error", "line_table", "WIDTH_LIMITS_KMS"]
 
 log = logging.getLogger(__name__)
 
@@ -65,6 +65,16 @@ BROAD_SCALE = (0.3, 2.5)
 GN_TOL_CHI2 = 0.05
 #: Half-width of a line's fitting window, in line sigmas.
 WINDOW_SIGMA = 5.0
+
+
+def covered(lo, hi, n: int) -> np.ndarray:
+    """Bool mask of the indices ``0 .. n-1`` inside any of the ranges ``lo[i]:hi[i]``.
+
+    >>> covered(np.array([1, 3]), np.array([2, 6]), 7).astype(int).tolist()
+    [0, 1, 0, 1, 1, 1, 0]
+    """
+    n1 = n + 1
+    return np.cumsum(np.bincount(lo, minlength=n1) - np.bincount(hi, minlength=n1))[:-1] > 0
 
 
 class LineModel:
@@ -110,9 +120,7 @@ class LineModel:
         self.present = (cover >= 3) & (core_good >= np.maximum(2, 0.5 * (core_hi - core_lo)))
         use = np.flatnonzero(self.present)
         if use.size:
-            n1 = wave.size + 1
-            sel = np.bincount(lo[use], minlength=n1) - np.bincount(hi[use], minlength=n1)
-            pix = np.flatnonzero((np.cumsum(sel)[:-1] > 0) & (ivar > 0))
+            pix = np.flatnonzero(covered(lo[use], hi[use], wave.size) & (ivar > 0))
         else:
             pix = np.zeros(0, dtype=int)
         self.pix = pix
