@@ -447,7 +447,10 @@ def nnls_normal(F, b, start=None, maxiter=None):
     The active-set method of Lawson & Hanson (1974, *Solving Least Squares Problems*, ch. 23)
     run on the ``k x k`` system. ``start`` (bool mask) is a guess of the active columns: when
     it is right (the KKT conditions hold) one small solve finishes, which is the common case
-    inside an iterative fit. The method stops only at a point satisfying the KKT conditions,
+    inside an iterative fit. A guess that fails (some of its columns come out negative) is
+    cut to its positive part and solved again, a few times, before the column-by-column
+    passes begin from the last feasible point (one line leaving the fit as z moves no longer
+    restarts them from nothing). The method stops only at a point satisfying the KKT conditions,
     and the solution is unique for positive-definite ``F``, so the start changes only the
     work. A ridge of 1e-12 of the mean diagonal is added, as in :func:`nnls_weighted`.
 
@@ -463,50 +466,57 @@ def nnls_normal(F, b, start=None, maxiter=None):
     n = b.size
     if n == 0:
         return np.zeros(0), 0.0
-    Fr = _ridged(F)
-    tol = 1e-13 * max(float(np.max(np.abs(b))), 1e-300) * n
-    if start is not None and start.all():  # all columns active: one solve and the KKT check
-        s = _spd_solve(Fr, b)
-        if s is not None and np.all(s > 0):
-            return s, float(2.0 * (b @ s) - s @ (Fr @ s))
-    a = np.zeros(n)
-    if start is None:  # guess: the positive part of the unconstrained solution
-        s = _spd_solve(Fr, b)
-        if s is None:
-            return _nnls_normal_fallback(F, b)
-        if np.all(s > 0):
-            return s, float(2.0 * (b @ s) - s @ (Fr @ s))
-        idx = np.flatnonzero(s > 0)
-    else:
-        idx = np.flatnonzero(start)
-    if idx.size:
-        s = _spd_solve(Fr[idx[:, None], idx], b[idx])
-        if s is not None and np.all(s > 0):
-            a[idx] = s
+    Fr = np.array(F, dtype=float)
+    Fr.ravel()[::n + 1] += 1e-12 * max(float(F.trace()) / n, 1e-300)
+    if start is None or start.all():  # the unconstrained solution first
+        s, info = _posv(Fr, b, lower=1)[1:]
+        if info:
+            if start is None:
+                return _nnls_normal_fallback(F, b)
+            P = np.zeros(n, dtype=bool)
         else:
-            idx = idx[:0]
-    P = np.zeros(n, dtype=bool)
-    P[idx] = True
+            P = s > 0
+            if P.all():
+                return s, float(2.0 * (b @ s) - s @ (Fr @ s))
+    else:
+        P = np.array(start, dtype=bool)
+    a = np.zeros(n)
+    for _ in range(4):  # the guess's positive part, refined a few times, as the feasible start
+        if not P.any():
+            break
+        idx = np.flatnonzero(P)
+        s, info = _posv(Fr[idx[:, None], idx], b[idx], lower=1)[1:]
+        if info:
+            P[:] = False
+            break
+        pos = s > 0
+        if pos.all():
+            a[idx] = s
+            break
+        P[idx[~pos]] = False
+    else:
+        P[:] = False
+    tol = 1e-13 * max(float(np.abs(b).max()), 1e-300) * n
     maxiter = 3 * n + 10 if maxiter is None else maxiter
     it = 0
-    while it < maxiter:  # outer loop of Lawson-Hanson (a few passes: columns added one by one)
+    while it < maxiter:  # outer loop of Lawson-Hanson
         g = b - Fr @ a  # minus half the gradient
         g[P] = -np.inf
-        j = int(np.argmax(g))
-        if g[j] <= tol:  # KKT: no column outside the passive set would lower the chi-square
+        j = int(g.argmax())
+        if g[j] <= tol:  # KKT holds
             break
         P[j] = True
         while it < maxiter:  # inner loop: drop columns that would turn negative
             it += 1
             idx = np.flatnonzero(P)
-            sP = _spd_solve(Fr[idx[:, None], idx], b[idx])
-            if sP is None:
+            sP, info = _posv(Fr[idx[:, None], idx], b[idx], lower=1)[1:]
+            if info:
                 return _nnls_normal_fallback(F, b)
-            if np.all(sP > 0):
+            neg = sP <= 0
+            if not neg.any():
                 a[:] = 0.0
                 a[idx] = sP
                 break
-            neg = sP <= 0
             aP = a[idx]
             ratio = np.full(idx.size, np.inf)
             ratio[neg] = aP[neg] / (aP[neg] - sP[neg])
@@ -514,7 +524,6 @@ def nnls_normal(F, b, start=None, maxiter=None):
             newP = aP + alpha * (sP - aP)
             a[:] = 0.0
             a[idx] = newP
-            # the column(s) that reach zero leave the passive set
             P[idx[(newP <= 0) | (ratio <= alpha * (1 + 1e-12))]] = False
             a[~P] = 0.0
             if not P.any():
