@@ -192,7 +192,8 @@ def _resample_on(prep: Prepared, pixels, n: int, rng):
     """
     pix = [p for p in pixels if p.size]
     U = np.unique(np.concatenate(pix)) if pix else np.zeros(0, dtype=int)
-    block, w, sw, M = continuum_operator(prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use)
+    block, w, sw, MU = continuum_operator(prep.ivar, prep.lnwave, scale_kms=prep.continuum_kms, use=prep.cont_use,
+                                          at=U)
     nblk = sw.size
     # single precision throughout (7 significant digits are plenty for noise, and residuals of
     # a few hundred sigma keep 1e-5 sigma): half the memory traffic of the (U, n) matrix
@@ -208,7 +209,7 @@ def _resample_on(prep: Prepared, pixels, n: int, rng):
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(sw[:, None] > 0, sums / np.where(sw > 0, sw, 1.0)[:, None], 0.0)
     # R = resid + where(ivar > 0, eps - c_eps, 0), in place
-    eps -= sparse.csr_matrix(M[:, U].T.astype(f4)) @ mean.astype(f4)
+    eps -= sparse.csr_matrix(MU.T.astype(f4)) @ mean.astype(f4)
     eps[~(prep.ivar[U] > 0)] = 0.0
     eps += prep.resid[U].astype(f4)[:, None]
     return U, eps.T

@@ -204,13 +204,15 @@ def continuum_batch(flux2d, ivar, lnwave, *, scale_kms: float = 8000.0, clip: fl
     return (cont, use) if return_use else cont
 
 
-def continuum_operator(ivar, lnwave, *, scale_kms: float = 8000.0, use=None):
+def continuum_operator(ivar, lnwave, *, scale_kms: float = 8000.0, use=None, at=None):
     """The continuum of :func:`continuum_batch` with a fixed pixel selection, as a linear map.
 
     Returns ``(block, w, sw, M)``: the block length in pixels (block ``k`` holds pixels
     ``k*block ... (k+1)*block-1``), the weights ``w`` (ivar on the selected pixels, else 0),
     their sum ``sw`` per block, and the ``(nblk, npix)`` interpolation matrix, so that the
     continuum of a flux row ``f`` is ``((sums of w f per block) / sw) @ M`` (0 for empty blocks).
+    With ``at`` (pixel indices) ``M`` holds only those columns, ``(nblk, at.size)``: the
+    continuum on those pixels, the same numbers as ``M[:, at]``.
     """
     ivar = np.asarray(ivar, dtype=float)
     lnwave = np.asarray(lnwave, dtype=float)
@@ -224,7 +226,8 @@ def continuum_operator(ivar, lnwave, *, scale_kms: float = 8000.0, use=None):
     sw = np.add.reduceat(w, starts)
     ok = sw > 0
     # built from unit vectors, so it equals the bridging of empty blocks in continuum_batch
-    M = _interp_blocks(centre, np.eye(starts.size), np.broadcast_to(ok, (starts.size, starts.size)), lnwave)
+    M = _interp_blocks(centre, np.eye(starts.size), np.broadcast_to(ok, (starts.size, starts.size)),
+                       lnwave if at is None else lnwave[at])
     M[~ok] = 0.0
     return block, w, sw, M
 

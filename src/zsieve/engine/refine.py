@@ -43,7 +43,7 @@ from .detect import lm_bounded
 from .prepare import C_KMS, good_cumsum
 from .identify import LineSet
 
-__all__ = ["LineModel", "CandidateFit", "covered", "refine", "with_formal_error", "line_table", "WIDTH_LIMITS_KMS"]
+__all__ = ["LineModel", "CandidateFit", "covered", "covered_index", "refine", "with_formal_error", "line_table", "WIDTH_LIMITS_KMS"]
 
 log = logging.getLogger(__name__)
 
@@ -65,6 +65,26 @@ BROAD_SCALE = (0.3, 2.5)
 GN_TOL_CHI2 = 0.05
 #: Half-width of a line's fitting window, in line sigmas.
 WINDOW_SIGMA = 5.0
+
+
+def covered_index(lo, hi) -> np.ndarray:
+    """Sorted distinct indices inside any of the ranges ``lo[i]:hi[i]`` (the same set as
+    ``np.flatnonzero(covered(lo, hi, n))``, built from the merged ranges, so the work goes with
+    the pixels covered rather than with the whole spectrum).
+
+    >>> covered_index(np.array([3, 1, 4]), np.array([6, 2, 5])).tolist()
+    [1, 3, 4, 5]
+    """
+    lo = np.asarray(lo)
+    if lo.size == 0:
+        return np.zeros(0, dtype=np.intp)
+    o = np.argsort(lo, kind="stable")
+    lo = lo[o]
+    hi = np.maximum.accumulate(np.asarray(hi)[o])
+    first = np.flatnonzero(np.concatenate(([True], lo[1:] > hi[:-1])))  # a range that starts a run
+    L = lo[first]
+    n = np.maximum(hi[np.append(first[1:], lo.size) - 1] - L, 0)  # each run ends at its last range's cummax
+    return np.repeat(L - (np.cumsum(n) - n), n) + np.arange(int(n.sum()))
 
 
 def covered(lo, hi, n: int) -> np.ndarray:
@@ -120,7 +140,8 @@ class LineModel:
         self.present = (cover >= 3) & (core_good >= np.maximum(2, 0.5 * (core_hi - core_lo)))
         use = np.flatnonzero(self.present)
         if use.size:
-            pix = np.flatnonzero(covered(lo[use], hi[use], wave.size) & (ivar > 0))
+            pix = covered_index(lo[use], hi[use])
+            pix = pix[ivar[pix] > 0]
         else:
             pix = np.zeros(0, dtype=int)
         self.pix = pix
