@@ -247,24 +247,43 @@ def _newton_z(fit: CandidateFit, R, z_n, amps, windows):
         return z_n
     sv = m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
     base = ls.wave[use] * (1 + ls.offset_kms[use] / C_KMS)
-    mu = (1 + z_n)[:, None] * base[None, :]  # (n, L)
-    s = mu * sv[None, :]
-    coef = a_full[:, m.col_of_line[use]] * (ls.sign[use] * ls.ratio[use])[None, :]  # (n, L)
+    # single precision, as the resamples themselves: offsets from each line's centre at the
+    # fitted z (a few Angstrom, so 7 digits keep 1e-6 of a line sigma); the step in z comes
+    # from sums of a few hundred terms
+    f4 = np.float32
     x, w = m.x[keep], m.w[keep]
-    model = np.zeros((R.shape[0], x.size))
+    mu = (1 + z_n)[:, None] * base[None, :]  # (n, L)
+    c0 = (1 + fit.z) * base  # the centres at the fitted z
+    s = (mu * sv[None, :]).astype(f4)
+    coef = (a_full[:, m.col_of_line[use]] * (ls.sign[use] * ls.ratio[use])[None, :] / (SQRT2PI * s)).astype(f4)
+    dmu = ((z_n - fit.z)[:, None] * base[None, :]).astype(f4)  # = mu - c0
+    inv1z = (1.0 / (1 + z_n)).astype(f4)[:, None]
+    model = np.zeros((R.shape[0], x.size), dtype=f4)
     dmod = np.zeros_like(model)
     for j in range(use.size):  # over lines (tens); each a vectorised (n, window) block
         sl = slice(lo[j], hi[j])
         sj = s[:, j:j + 1]
-        u = (x[None, sl] - mu[:, j:j + 1]) / sj
-        p = coef[:, j:j + 1] * np.exp(-0.5 * u * u) / (SQRT2PI * sj)
+        u = (x[sl] - c0[j]).astype(f4)[None, :] - dmu[:, j:j + 1]
+        u /= sj
+        p = u * u
+        p *= -0.5
+        np.exp(p, out=p)
+        p *= coef[:, j:j + 1]
         model[:, sl] += p
-        dmod[:, sl] += p * (u / sj * base[j] + (u * u - 1.0) / (1 + z_n)[:, None])
+        d = u / sj
+        d *= f4(base[j])
+        u *= u
+        u -= 1.0
+        u *= inv1z
+        d += u
+        d *= p
+        dmod[:, sl] += d
     r = R - model
     r *= dmod
-    num = r @ w
+    w4 = w.astype(f4)
+    num = (r @ w4).astype(float)
     dmod *= dmod
-    den = dmod @ w
+    den = (dmod @ w4).astype(float)
     with np.errstate(divide="ignore", invalid="ignore"):
         step = np.where(den > 0, num / den, 0.0)
     zmax = 5.0 * max(fit.z_err if np.isfinite(fit.z_err) else 0.0, 30.0 / C_KMS * (1 + fit.z))
