@@ -97,6 +97,18 @@ def covered(lo, hi, n: int) -> np.ndarray:
     return np.cumsum(np.bincount(lo, minlength=n1) - np.bincount(hi, minlength=n1))[:-1] > 0
 
 
+def _line_constants(ls: LineSet):
+    """``(centre at z = 0, broad mask, broad lines' typical sigma)`` of a LineSet, computed once
+    and kept on it (read-only arrays)."""
+    got = getattr(ls, "_zs_line_constants", None)
+    if got is None:
+        got = (ls.wave * (1 + ls.offset_kms / C_KMS), ls.broad, ls.width_kms / 2.3548)
+        for arr in got:
+            arr.flags.writeable = False
+        ls._zs_line_constants = got
+    return got
+
+
 class LineModel:
     """Gaussian lines of one class at (z, widths) on the pixels near the lines.
 
@@ -118,11 +130,9 @@ class LineModel:
                  broad_scale: float = 1.0, z_slack: float = 0.0, good_cs=None):
         self.ls = ls
         self.sigma_inst = float(sigma_inst_kms)
-        # per-line constants reused by every evaluation (the LineSet's are computed properties)
-        self._base = ls.wave * (1 + ls.offset_kms / C_KMS)  # centre at z = 0
-        self._broad = ls.broad
+        # per-line constants reused by every evaluation (kept on the LineSet: one per class)
+        self._base, self._broad, self._bw = _line_constants(ls)
         self._any_broad = bool(self._broad.any())
-        self._bw = ls.width_kms / 2.3548
         self._sv_key = None
         obs = self._base * (1 + z)
         sv = self._sigma_v(width_kms, broad_scale)
@@ -130,14 +140,14 @@ class LineModel:
         core = 1.5 * obs * sv / C_KMS
         nl = obs.size
         # window edges and core edges of every line in one search
-        lo, hi, core_lo, core_hi = np.searchsorted(
-            wave, np.concatenate([obs - half, obs + half, obs - core, obs + core])).reshape(4, nl)
+        edges = np.concatenate([obs - half, obs + half, obs - core, obs + core])
+        lo, hi, core_lo, core_hi = np.searchsorted(wave, edges).reshape(4, nl)
         if good_cs is None:
             good_cs = good_cumsum(ivar)
-        cover = good_cs[hi] - good_cs[lo]
+        gc = good_cs[np.concatenate([lo, hi, core_lo, core_hi])].reshape(4, nl)
         # a line is usable when most of its core is on good pixels
-        core_good = good_cs[core_hi] - good_cs[core_lo]
-        self.present = (cover >= 3) & (core_good >= np.maximum(2, 0.5 * (core_hi - core_lo)))
+        core_good = gc[3] - gc[2]
+        self.present = (gc[1] - gc[0] >= 3) & (core_good >= np.maximum(2, 0.5 * (core_hi - core_lo)))
         use = np.flatnonzero(self.present)
         if use.size:
             pix = covered_index(lo[use], hi[use])
@@ -156,22 +166,19 @@ class LineModel:
         self.col_of_line = np.full(nl, -1)
         self.col_of_line[use] = inv
         self._use = use
+        self._inv = inv
         self._coef = ls.sign[use] * ls.ratio[use]
-        onehot = np.zeros((use.size, groups.size))
-        onehot[np.arange(use.size), inv] = self._coef
-        self._onehot = onehot
+        self._onehot_ = None
         # each line's own slice of the window pixels (profiles are negligible outside it)
-        self._lo, self._hi = np.searchsorted(self.x, np.concatenate([(obs - half)[use], (obs + half)[use]])
-                                             ).reshape(2, use.size)
+        self._lo, self._hi = np.searchsorted(self.x, edges.reshape(4, nl)[:2, use]).reshape(2, use.size)
         # the (line, pixel) pairs of those slices, flattened (ragged: no padding), for one
         # vectorised evaluation of all profiles; ordered by model column, so that per-column
         # sums are contiguous (np.add.reduceat)
-        nwin = np.maximum(self._hi - self._lo, 0)
         ordl = np.argsort(inv, kind="stable")
-        nw = nwin[ordl]
+        nw = np.maximum(self._hi - self._lo, 0)[ordl]
+        st = np.cumsum(nw) - nw  # each line's first entry
         self._eline = np.repeat(ordl, nw)
-        start = np.repeat(np.cumsum(nw) - nw, nw)
-        self._epix = self._lo[self._eline] + (np.arange(self._eline.size) - start)
+        self._epix = np.arange(self._eline.size) + np.repeat(self._lo[ordl] - st, nw)
         self._ex = self.x[self._epix]
         self._ecol = inv[self._eline]
         self._eflat = self._epix * max(groups.size, 1) + self._ecol
@@ -179,9 +186,20 @@ class LineModel:
         self._pairs = None
         self._prof = None
         self._re = None
-        # first entry of each column (every column has entries: its lines cover >= 3 pixels)
-        self._cstart = np.flatnonzero(np.concatenate(([True], self._ecol[1:] != self._ecol[:-1]))) \
+        # first entry of each column (every column has entries: its lines cover >= 3 pixels):
+        # the first entry of the first line of each column in entry order
+        io = inv[ordl]
+        self._cstart = st[np.flatnonzero(np.concatenate(([True], io[1:] != io[:-1])))] \
             if self._ecol.size else np.zeros(0, dtype=int)
+
+    @property
+    def _onehot(self):
+        """``(n_used_lines, n_cols)``: each used line's coefficient in its column (dense path)."""
+        if self._onehot_ is None:
+            oh = np.zeros((self._use.size, self.groups.size))
+            oh[np.arange(self._use.size), self._inv] = self._coef
+            self._onehot_ = oh
+        return self._onehot_
 
     @property
     def n_cols(self) -> int:
