@@ -171,7 +171,7 @@ class Seed:
 
 def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, *,
             n_lone: int = 3, tol_sigma: float = 3.0, max_features: int = 16,
-            max_seeds_per_class: int = 12) -> list[Seed]:
+            max_seeds_per_class: int = 12, class_z_range: dict | None = None) -> list[Seed]:
     """Candidate redshifts from feature-line pairings, voted in ln(1+z).
 
     Parameters
@@ -186,6 +186,9 @@ def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, 
         Only the strongest features vote (weak ones join later through the line model).
     max_seeds_per_class : int
         Multi-line proposals kept per class, best supported first.
+    class_z_range : dict class -> (z_min, z_max), optional
+        A narrower range for some classes (stars: near rest), used in place of
+        ``z_min, z_max`` for them.
     """
     if not features:
         return []
@@ -194,9 +197,10 @@ def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, 
     emu = np.array([max(f.centroid_err, 1e-6) for f in features])
     fsign = np.array([1 if f.kind == "emission" else -1 for f in features])
     fsnr = np.array([f.snr for f in features])
-    lo, hi = math.log1p(z_min), math.log1p(z_max)
     seeds: list[Seed] = []
     for cls, ls in linesets.items():
+        zlo, zhi = (class_z_range or {}).get(cls, (z_min, z_max))
+        lo, hi = math.log1p(zlo), math.log1p(zhi)
         # all pairings (features x lines) with matching sign, inside the z range
         v = np.log(mu)[:, None] - np.log(ls.wave)[None, :]
         ok = (fsign[:, None] == ls.sign[None, :]) & (v >= lo) & (v <= hi)
@@ -242,7 +246,7 @@ def propose(features, linesets: dict[str, LineSet], z_min: float, z_max: float, 
         for i in strong_f:
             for l in np.flatnonzero(ls.strong & (ls.sign == fsign[i])):
                 zz = float(mu[i] / ls.wave[l] - 1.0)
-                if z_min <= zz <= z_max:
+                if zlo <= zz <= zhi:
                     seeds.append(Seed(zz, cls, "lone", n_features=1, features=[int(i)],
                                       lines=[ls.names[l]], score=0.5))
     return dedupe(seeds)

@@ -237,8 +237,13 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     # ---------------------------------------------------------------- proposals
     # the range's ends take a measurement error's slack: z = 0.0000 measured as -0.00002 is in range
     z_lo, z_hi = _search_range(cfg)
-    seeds = propose(feats, linesets, z_lo, z_hi)
     star_lo = -STAR_MAX_KMS / C_KMS
+    # a star is searched within STAR_MAX_KMS of rest: line patterns that put a star anywhere
+    # else (most star proposals were a galaxy's Balmer or Ca II lines read as a star's at
+    # z = 0.4) are no reading, and took shortlist places only to be refitted from the edge of
+    # the stellar range
+    star_far = (STAR_MAX_KMS + EDGE_SLACK_KMS) / C_KMS
+    seeds = propose(feats, linesets, z_lo, z_hi, class_z_range={"star": (-star_far, star_far)})
     if "star" in linesets:
         seeds.append(Seed(0.0, "star", "prior", score=0.0))
     xc = None
