@@ -189,7 +189,8 @@ def _pack(a, mu, s, cov, i, wave, cont, n=1):
                 kind="emission" if a > 0 else "absorption")
 
 
-def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, xtol: float = 1e-6):
+def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, xtol: float = 1e-6,
+               normal=None):
     """Levenberg-Marquardt minimisation of ``|fun(p)|^2`` with box bounds (steps clipped).
 
     Marquardt's diagonal scaling (``J^T J`` diagonal, the same as ``x_scale='jac'`` of
@@ -198,7 +199,8 @@ def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, 
     few tens of parameters) converge in a handful of iterations at a fraction of the cost of
     the general-purpose solver. It stops when the chi-square falls by less than ``rtol`` of
     itself, the step is below ``xtol`` of the parameters, or after ``max_nfev`` evaluations of
-    ``fun``. Returns ``(p, chi2)``.
+    ``fun``. ``normal(p, r)``, if given, returns the normal equations ``(J^T J, J^T r)`` in
+    place of ``jac`` (a problem that can form them without the Jacobian). Returns ``(p, chi2)``.
 
     >>> import numpy as np
     >>> x = np.linspace(-3.0, 3.0, 61)
@@ -220,9 +222,11 @@ def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, 
     lam = 1e-3
     nfev = 1
     while nfev < max_nfev:  # iterations (a handful)
-        J = jac(p)
-        g = J.T @ r
-        H = J.T @ J
+        if normal is None:
+            J = jac(p)
+            H, g = J.T @ J, J.T @ r
+        else:
+            H, g = normal(p, r)
         d = np.maximum(np.diag(H), 1e-12 * max(float(np.max(np.diag(H), initial=0.0)), 1e-300))
         improved = False
         while nfev < max_nfev and lam < 1e12:

@@ -375,8 +375,42 @@ class LineModel:
         model)`` with the model on the window pixels; ``start`` = a guess of the active columns."""
         p = self._entry_profiles(z, width_kms, broad_scale)
         F, b = self.normal_equations(p, rr)
+        self._F = F  # kept with the profiles for project_out at this point
         a, gain = nnls_normal(F, b, start=start)
         return a, gain, self.model_vector(p, a)
+
+    def amp_coupling(self, cols, active):
+        """``(A, C, X)`` for the columns ``cols`` (1-D arrays on the window pixels) at the point
+        of the last :meth:`fit_at`: the active model columns ``A``, ``C = G_A^T W J`` and
+        ``X = (G_A^T W G_A)^-1 C``, or None (nothing active or a singular system). ``G_A X`` is
+        the part of a change ``J`` that the re-solved amplitudes absorb, so ``J^T W J - C^T X``
+        are the Gauss-Newton normal equations of the non-linear parameters with the amplitudes
+        solved (the Schur complement of the joint system; Kaufman 1975, BIT 15, 49, from memory:
+        the variable-projection Jacobian with its second-order term dropped)."""
+        A = np.flatnonzero(active)
+        if A.size == 0 or self._eline.size == 0:
+            return None
+        pw = self._prof[1] * self._ew
+        C = np.stack([np.add.reduceat(pw * c[self._epix], self._cstart)[A] for c in cols], axis=1)
+        X, info = _posv(_ridged(self._F[A[:, None], A]), C, lower=1)[1:]
+        return None if info else (A, C, X)
+
+    def project_out(self, cols, active):
+        """The columns ``cols`` less the part the re-solved amplitudes absorb (see
+        :meth:`amp_coupling`), as an ``(npix, len(cols))`` matrix: the Jacobian of the
+        variable-projection problem."""
+        J = np.column_stack(cols)
+        got = self.amp_coupling(cols, active)
+        if got is None:
+            return J
+        A, _, X = got
+        p = self._prof[1]
+        Xf = np.zeros((self.n_cols, len(cols)))
+        Xf[A] = X
+        n = self.x.size
+        for j in range(len(cols)):  # two or three parameters
+            J[:, j] -= np.bincount(self._epix, p * Xf[self._ecol, j], minlength=n)
+        return J
 
     def scan_best(self, rr, zs, width_kms, broad_scale=1.0):
         """``(index, delta_chi2)`` of the z in ``zs`` with the largest amplitude-fit gain (the
@@ -689,13 +723,33 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         return solve(p)[0]
 
     def jac(p):
-        # the model's derivatives with the amplitudes held; projecting out the amplitudes'
-        # response (Kaufman 1975) was measured: fewer steps on blends, 9% more work overall
+        # the model's derivatives with the amplitudes held, less the part the re-solved
+        # amplitudes absorb (LineModel.project_out)
         z, wk, bs = unpack(p)
         a = solve(p)[1]
         dz, dw, db = model.model_derivs(z, wk, bs, a)
         cols = [dz, dw] + ([db] if has_broad else [])
-        return np.column_stack(cols) * sw[:, None]
+        return model.project_out(cols, a > 0) * sw[:, None]
+
+    def normal_eq(q, r):
+        """``(S, g)``: the Gauss-Newton normal equations of the two or three parameters with
+        the amplitudes re-solved (``LineModel.amp_coupling``: no projected Jacobian is formed)
+        and the gradient ``J^T r``, which needs no correction, the residual being orthogonal to
+        the active columns at their least-squares amplitudes."""
+        z, wk, bs = unpack(q)
+        a = solve(q)[1]
+        cols = list(model.model_derivs(z, wk, bs, a))[:q.size]
+        Jw = np.column_stack(cols) * sw[:, None]
+        S = Jw.T @ Jw
+        got = model.amp_coupling(cols, a > 0)
+        if got is not None:
+            raw = np.diag(S).copy()
+            S -= got[1].T @ got[2]
+            # a direction the amplitudes absorb entirely (what is left is rounding) is no step
+            gone = np.diag(S) <= 1e-12 * raw
+            S[gone, :] = 0.0
+            S[:, gone] = 0.0
+        return S, Jw.T @ r
 
     lb = [z0 - z_tol, wlo]
     ub = [z0 + z_tol, whi]
@@ -725,25 +779,25 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     p = np.array(p0, dtype=float)
     chi = float(np.sum(fun(p) ** 2))
     for _ in range(6):  # damped Gauss-Newton with the bounds enforced by clipping
-        J = jac(p)
         r = fun(p)
-        # the least-squares step from the normal equations of the two or three parameters,
-        # columns scaled to unit norm (their units differ by orders of magnitude); a zero
-        # column (the width derivative at zero width) takes no step, as in the minimum-norm
-        # solution
-        nrm = np.sqrt(np.einsum("ij,ij->j", J, J))
-        live = nrm > 0
+        S, g = normal_eq(p, r)
+        # columns scaled to unit norm (their units differ by orders of magnitude); a column
+        # with nothing left (the width derivative at zero width) takes no step, as in the
+        # minimum-norm solution
+        d = np.diag(S)
+        live = d > 0
         if not live.any():
             break
-        Js = J[:, live] / nrm[live]
-        sl = _spd_solve(Js.T @ Js, -(Js.T @ r))
+        nrm = np.sqrt(d[live])
+        sl = _spd_solve(S[np.ix_(live, live)] / np.outer(nrm, nrm), -g[live] / nrm)
         if sl is None:  # (near-)collinear columns: the least-squares solver's minimum-norm step
             try:
-                sl = np.linalg.lstsq(Js, -r, rcond=None)[0]
+                Jp = jac(p)[:, live] / nrm
+                sl = np.linalg.lstsq(Jp, -r, rcond=None)[0]
             except np.linalg.LinAlgError:
                 break
         step = np.zeros(p.size)
-        step[live] = sl / nrm[live]
+        step[live] = sl / nrm
         for damp in (1.0, 0.5, 0.25):
             q = np.clip(p + damp * step, lb_a, ub_a)
             cq = chi2(q)
@@ -756,7 +810,7 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         if converged:
             break
     if polish:  # bounded Levenberg-Marquardt on the same variable-projection problem
-        q, cq = lm_bounded(fun, jac, p, lb_a, ub_a, max_nfev=20, rtol=1e-8, xtol=1e-8)
+        q, cq = lm_bounded(fun, jac, p, lb_a, ub_a, max_nfev=20, rtol=1e-8, xtol=1e-8, normal=normal_eq)
         if cq <= chi:
             p = q
     z, wk, bs = unpack(p)
