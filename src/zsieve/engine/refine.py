@@ -677,7 +677,8 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
     ``z_tol`` bounds the search to ``z0 +/- z_tol`` (default: 300 km/s, 2000 km/s for quasars);
     with ``scan`` a coarse grid over that range picks the start (for proposals whose z is only
     approximate, such as correlation peaks). The fit runs a few damped Gauss-Newton steps
-    (amplitudes solved exactly at each step); with ``polish`` it is finished by a bounded
+    (amplitudes solved exactly at each point, the steps from the normal equations with the
+    amplitudes re-solved, :meth:`LineModel.amp_coupling`); with ``polish`` it is finished by a bounded
     Levenberg-Marquardt fit (:func:`zsieve.engine.detect.lm_bounded`; bounds on z and widths).
     Without ``error`` the formal error of z is left NaN (:func:`with_formal_error` adds it),
     for fits that may be dropped unused.
