@@ -82,3 +82,33 @@ def test_sparse_normal_equations_equal_dense_products():
     assert np.allclose(a1, a_ref, atol=1e-10) and np.allclose(a2, a_ref, atol=1e-10)
     assert g1 == pytest.approx(g_ref, rel=1e-9) and g2 == pytest.approx(g_ref, rel=1e-9)
     assert np.allclose(mod, m.design(0.121, 80.0, 1.3) @ a2, rtol=1e-12, atol=1e-14)
+
+
+def test_step_equations_with_amplitudes_resolved_equal_the_projected_jacobian():
+    # Variable projection (Golub & Pereyra 1973, SIAM J. Numer. Anal. 10, 413; Kaufman 1975,
+    # BIT 15, 49; from memory): with the amplitudes solved, the Gauss-Newton matrix of the
+    # non-linear parameters is J_K^T W J_K with J_K = (I - G_A (G_A^T W G_A)^-1 G_A^T W) J,
+    # the weighted projection computed here densely with numpy's least squares.
+    ls = _lineset()
+    wave = np.linspace(5000.0, 6000.0, 2500)
+    ivar = np.random.default_rng(1).random(wave.size) + 0.5
+    resid = np.random.default_rng(2).normal(size=wave.size)
+    m = LineModel(ls, wave, ivar, 70.0, 0.12, 100.0, broad_scale=2.0, z_slack=0.005)
+    rr = resid[m.pix] + m.design(0.1205, 80.0, 1.3) @ np.arange(1.0, m.n_cols + 1)
+    a, _, _ = m.fit_at(rr, 0.1205, 80.0, 1.3)
+    act = a > 0
+    assert act.sum() >= 2
+    cols = list(m.model_derivs(0.1205, 80.0, 1.3, a))
+    A, C, X = m.amp_coupling(cols, act, (0.1205, 80.0, 1.3))
+    J = np.column_stack(cols)
+    G = m.design(0.1205, 80.0, 1.3)[:, act]
+    sw = np.sqrt(m.w)
+    coef = np.linalg.lstsq(G * sw[:, None], J * sw[:, None], rcond=None)[0]
+    JK = J - G @ coef
+    S = (J * m.w[:, None]).T @ J - C.T @ X
+    ref = (JK * m.w[:, None]).T @ JK
+    assert np.allclose(S, ref, rtol=1e-7, atol=1e-9 * np.abs(ref).max())
+    assert np.allclose(m.project_out(cols, act, (0.1205, 80.0, 1.3)), JK, rtol=1e-7,
+                       atol=1e-9 * np.abs(JK).max())
+    # at another point than the last fit the coupling is not offered
+    assert m.amp_coupling(cols, act, (0.1206, 80.0, 1.3)) is None

@@ -185,6 +185,7 @@ class LineModel:
         self._ew = self.w[self._epix]
         self._pairs = None
         self._prof = None
+        self._F = None
         self._re = None
         # first entry of each column (every column has entries: its lines cover >= 3 pixels):
         # the first entry of the first line of each column in entry order
@@ -375,32 +376,34 @@ class LineModel:
         model)`` with the model on the window pixels; ``start`` = a guess of the active columns."""
         p = self._entry_profiles(z, width_kms, broad_scale)
         F, b = self.normal_equations(p, rr)
-        self._F = F  # kept with the profiles for project_out at this point
+        self._F = F  # kept with the profiles for amp_coupling at this point
         a, gain = nnls_normal(F, b, start=start)
         return a, gain, self.model_vector(p, a)
 
-    def amp_coupling(self, cols, active):
-        """``(A, C, X)`` for the columns ``cols`` (1-D arrays on the window pixels) at the point
-        of the last :meth:`fit_at`: the active model columns ``A``, ``C = G_A^T W J`` and
-        ``X = (G_A^T W G_A)^-1 C``, or None (nothing active or a singular system). ``G_A X`` is
+    def amp_coupling(self, cols, active, point):
+        """``(A, C, X)`` for the columns ``cols`` (1-D arrays on the window pixels) at ``point``
+        ``(z, width, broad_scale)``, which must be that of the last :meth:`fit_at`: the active
+        model columns ``A``, ``C = G_A^T W J`` and ``X = (G_A^T W G_A)^-1 C``, or None (nothing
+        active, another point, or a singular system). ``G_A X`` is
         the part of a change ``J`` that the re-solved amplitudes absorb, so ``J^T W J - C^T X``
         are the Gauss-Newton normal equations of the non-linear parameters with the amplitudes
         solved (the Schur complement of the joint system; Kaufman 1975, BIT 15, 49, from memory:
         the variable-projection Jacobian with its second-order term dropped)."""
         A = np.flatnonzero(active)
-        if A.size == 0 or self._eline.size == 0:
+        if A.size == 0 or self._eline.size == 0 or self._F is None or self._prof is None \
+                or self._prof[0] != tuple(float(v) for v in point):
             return None
         pw = self._prof[1] * self._ew
         C = np.stack([np.add.reduceat(pw * c[self._epix], self._cstart)[A] for c in cols], axis=1)
         X, info = _posv(_ridged(self._F[A[:, None], A]), C, lower=1)[1:]
         return None if info else (A, C, X)
 
-    def project_out(self, cols, active):
+    def project_out(self, cols, active, point):
         """The columns ``cols`` less the part the re-solved amplitudes absorb (see
         :meth:`amp_coupling`), as an ``(npix, len(cols))`` matrix: the Jacobian of the
         variable-projection problem."""
         J = np.column_stack(cols)
-        got = self.amp_coupling(cols, active)
+        got = self.amp_coupling(cols, active, point)
         if got is None:
             return J
         A, _, X = got
@@ -730,7 +733,7 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         a = solve(p)[1]
         dz, dw, db = model.model_derivs(z, wk, bs, a)
         cols = [dz, dw] + ([db] if has_broad else [])
-        return model.project_out(cols, a > 0) * sw[:, None]
+        return model.project_out(cols, a > 0, (z, wk, bs)) * sw[:, None]
 
     def normal_eq(q, r):
         """``(S, g)``: the Gauss-Newton normal equations of the two or three parameters with
@@ -742,7 +745,7 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         cols = list(model.model_derivs(z, wk, bs, a))[:q.size]
         Jw = np.column_stack(cols) * sw[:, None]
         S = Jw.T @ Jw
-        got = model.amp_coupling(cols, a > 0)
+        got = model.amp_coupling(cols, a > 0, (z, wk, bs))
         if got is not None:
             raw = np.diag(S).copy()
             S -= got[1].T @ got[2]
