@@ -228,10 +228,19 @@ def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, 
         else:
             H, g = normal(p, r)
         d = np.maximum(np.diag(H), 1e-12 * max(float(np.max(np.diag(H), initial=0.0)), 1e-300))
+        # a parameter on a bound that the descent direction pushes beyond it is held there and
+        # the step solved without it (a clipped full step leaves the others a step meant for a
+        # move the bound forbids, and the fit crawls along the bound)
+        free = ~(((p <= lb) & (g > 0)) | ((p >= ub) & (g < 0)))
+        if not free.any():
+            break
+        if not free.all():
+            H, g, d = H[np.ix_(free, free)], g[free], d[free]
         improved = False
         while nfev < max_nfev and lam < 1e12:
             try:
-                step = np.linalg.solve(H + lam * np.diag(d), -g)
+                step = np.zeros(p.size)
+                step[free] = np.linalg.solve(H + lam * np.diag(d), -g)
             except np.linalg.LinAlgError:
                 lam *= 10.0
                 continue
