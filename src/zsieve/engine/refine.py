@@ -789,7 +789,8 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         # with nothing left (the width derivative at zero width) takes no step, as in the
         # minimum-norm solution
         d = np.diag(S)
-        live = d > 0
+        # a parameter on a bound that the descent direction pushes beyond it is held there
+        live = (d > 0) & ~(((p <= lb_a) & (g > 0)) | ((p >= ub_a) & (g < 0)))
         if not live.any():
             break
         nrm = np.sqrt(d[live])
