@@ -37,7 +37,7 @@ import numpy as np
 from scipy import sparse
 
 from .prepare import Prepared, continuum_batch, continuum_operator
-from .refine import SQRT2PI, WINDOW_SIGMA, CandidateFit, covered
+from .refine import SQRT2PI, WINDOW_SIGMA, CandidateFit, covered_index
 from .prepare import C_KMS
 
 __all__ = ["BootstrapResult", "resample_noise", "bootstrap", "robust_sigma", "hopeless", "HOPELESS_SIGMA"]
@@ -227,9 +227,8 @@ def _active_windows(fit: CandidateFit):
     mu0 = m.centres(fit.z)[use]
     lo = np.searchsorted(m.x, mu0 - WINDOW_SIGMA * mu0 * sv)
     hi = np.searchsorted(m.x, mu0 + WINDOW_SIGMA * mu0 * sv)
-    inside = covered(lo, hi, m.x.size)
-    cs = np.concatenate(([0], np.cumsum(inside)))
-    return use, np.flatnonzero(inside), cs[lo], cs[hi]
+    keep = covered_index(lo, hi)
+    return use, keep, np.searchsorted(keep, lo), np.searchsorted(keep, hi)
 
 
 def _newton_z(fit: CandidateFit, R, z_n, amps, windows):

@@ -36,7 +36,7 @@ from functools import lru_cache
 
 from scipy.fft import next_fast_len
 
-__all__ = ["Feature", "detect_features", "matched_filter_snr", "lm_bounded"]
+__all__ = ["Feature", "detect_features", "matched_filter_snr", "lm_bounded", "pushed_past_bounds"]
 
 log = logging.getLogger(__name__)
 
@@ -189,6 +189,17 @@ def _pack(a, mu, s, cov, i, wave, cont, n=1):
                 kind="emission" if a > 0 else "absorption")
 
 
+def pushed_past_bounds(p, lb, ub, g):
+    """Parameters on a bound that the descent direction ``-g`` (``g = J^T r``) pushes beyond it:
+    a step holds them there and is solved without them.
+
+    >>> p, g = np.array([0.0, 0.0, 1.0]), np.array([1.0, -1.0, -1.0])
+    >>> pushed_past_bounds(p, np.zeros(3), np.ones(3), g).tolist()
+    [True, False, True]
+    """
+    return ((p <= lb) & (g > 0)) | ((p >= ub) & (g < 0))
+
+
 def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, xtol: float = 1e-6,
                normal=None):
     """Levenberg-Marquardt minimisation of ``|fun(p)|^2`` with box bounds (steps clipped).
@@ -231,7 +242,7 @@ def lm_bounded(fun, jac, p0, lb, ub, *, max_nfev: int = 40, rtol: float = 1e-6, 
         # a parameter on a bound that the descent direction pushes beyond it is held there and
         # the step solved without it (a clipped full step leaves the others a step meant for a
         # move the bound forbids, and the fit crawls along the bound)
-        free = ~(((p <= lb) & (g > 0)) | ((p >= ub) & (g < 0)))
+        free = ~pushed_past_bounds(p, lb, ub, g)
         if not free.any():
             break
         if not free.all():

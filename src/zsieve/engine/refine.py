@@ -39,11 +39,11 @@ from scipy.linalg import solve_triangular
 from scipy.linalg.lapack import dposv as _posv
 from scipy.optimize import nnls
 
-from .detect import lm_bounded
+from .detect import lm_bounded, pushed_past_bounds
 from .prepare import C_KMS, good_cumsum
 from .identify import LineSet
 
-__all__ = ["LineModel", "CandidateFit", "covered", "covered_index", "refine", "with_formal_error", "line_table", "WIDTH_LIMITS_KMS"]
+__all__ = ["LineModel", "CandidateFit", "covered_index", "refine", "with_formal_error", "line_table", "WIDTH_LIMITS_KMS"]
 
 log = logging.getLogger(__name__)
 
@@ -68,9 +68,9 @@ WINDOW_SIGMA = 5.0
 
 
 def covered_index(lo, hi) -> np.ndarray:
-    """Sorted distinct indices inside any of the ranges ``lo[i]:hi[i]`` (the same set as
-    ``np.flatnonzero(covered(lo, hi, n))``, built from the merged ranges, so the work goes with
-    the pixels covered rather than with the whole spectrum).
+    """Sorted distinct indices inside any of the ranges ``lo[i]:hi[i]`` (``lo <= hi``), built
+    from the merged ranges, so the work goes with the pixels covered rather than with the whole
+    spectrum (the union of line windows: :class:`LineModel`, the bootstrap's active windows).
 
     >>> covered_index(np.array([3, 1, 4]), np.array([6, 2, 5])).tolist()
     [1, 3, 4, 5]
@@ -85,16 +85,6 @@ def covered_index(lo, hi) -> np.ndarray:
     L = lo[first]
     n = np.maximum(hi[np.append(first[1:], lo.size) - 1] - L, 0)  # each run ends at its last range's cummax
     return np.repeat(L - (np.cumsum(n) - n), n) + np.arange(int(n.sum()))
-
-
-def covered(lo, hi, n: int) -> np.ndarray:
-    """Bool mask of the indices ``0 .. n-1`` inside any of the ranges ``lo[i]:hi[i]``.
-
-    >>> covered(np.array([1, 3]), np.array([2, 6]), 7).astype(int).tolist()
-    [0, 1, 0, 1, 1, 1, 0]
-    """
-    n1 = n + 1
-    return np.cumsum(np.bincount(lo, minlength=n1) - np.bincount(hi, minlength=n1))[:-1] > 0
 
 
 def _line_constants(ls: LineSet):
@@ -790,7 +780,7 @@ def refine(ls: LineSet, z0: float, wave, resid, ivar, *, sigma_inst_kms: float, 
         # minimum-norm solution
         d = np.diag(S)
         # a parameter on a bound that the descent direction pushes beyond it is held there
-        live = (d > 0) & ~(((p <= lb_a) & (g > 0)) | ((p >= ub_a) & (g < 0)))
+        live = (d > 0) & ~pushed_past_bounds(p, lb_a, ub_a, g)
         if not live.any():
             break
         nrm = np.sqrt(d[live])
