@@ -245,7 +245,7 @@ def _newton_z(fit: CandidateFit, R, z_n, amps, windows):
     if use.size == 0:
         return z_n
     sv = m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
-    base = ls.wave[use] * (1 + ls.offset_kms[use] / C_KMS)
+    base = m.centres(0.0)[use]  # the line centres at z = 0
     # single precision, as the resamples themselves: offsets from each line's centre at the
     # fitted z (a few Angstrom, so 7 digits keep 1e-6 of a line sigma); the step in z comes
     # from sums of a few hundred terms

@@ -385,8 +385,8 @@ class LineModel:
             return None
         pw = self._prof[1] * self._ew
         C = np.stack([np.add.reduceat(pw * c[self._epix], self._cstart)[A] for c in cols], axis=1)
-        X, info = _posv(_ridged(self._F[A[:, None], A]), C, lower=1)[1:]
-        return None if info else (A, C, X)
+        X = _spd_solve(_ridged(self._F[A[:, None], A]), C)
+        return None if X is None else (A, C, X)
 
     def project_out(self, cols, active, point):
         """The columns ``cols`` less the part the re-solved amplitudes absorb (see
@@ -532,11 +532,10 @@ def nnls_normal(F, b, start=None, maxiter=None):
     n = b.size
     if n == 0:
         return np.zeros(0), 0.0
-    Fr = np.array(F, dtype=float)
-    Fr.ravel()[::n + 1] += 1e-12 * max(float(F.trace()) / n, 1e-300)
+    Fr = _ridged(F)
     if start is None or start.all():  # the unconstrained solution first
-        s, info = _posv(Fr, b, lower=1)[1:]
-        if info:
+        s = _spd_solve(Fr, b)
+        if s is None:
             if start is None:
                 return _nnls_normal_fallback(F, b)
             P = np.zeros(n, dtype=bool)
@@ -551,8 +550,8 @@ def nnls_normal(F, b, start=None, maxiter=None):
         if not P.any():
             break
         idx = np.flatnonzero(P)
-        s, info = _posv(Fr[idx[:, None], idx], b[idx], lower=1)[1:]
-        if info:
+        s = _spd_solve(Fr[idx[:, None], idx], b[idx])
+        if s is None:
             P[:] = False
             break
         pos = s > 0
@@ -575,8 +574,8 @@ def nnls_normal(F, b, start=None, maxiter=None):
         while it < maxiter:  # inner loop: drop columns that would turn negative
             it += 1
             idx = np.flatnonzero(P)
-            sP, info = _posv(Fr[idx[:, None], idx], b[idx], lower=1)[1:]
-            if info:
+            sP = _spd_solve(Fr[idx[:, None], idx], b[idx])
+            if sP is None:
                 return _nnls_normal_fallback(F, b)
             neg = sP <= 0
             if not neg.any():
