@@ -20,6 +20,7 @@ import pytest
 from zsieve.engine.evidence import (BALMER_CASE_B, balmer_test, birge_factor, doublet_delta_chi2,
                                     companion_test, forest_absent, forest_test, forest_transmission)
 from zsieve.engine.measure import DOUBLET_DCHI2, MeasureConfig, measure
+from zsieve.engine.prepare import range_mask, sky_ranges
 from zsieve.spectrum import Spectrum
 
 C_KMS = 299792.458
@@ -132,6 +133,13 @@ def test_lone_oii_doublet_counts_as_two_lines():
     assert res.extra["doublet_dchi2"] and max(res.extra["doublet_dchi2"].values()) > DOUBLET_DCHI2
     assert res.extra["evidence"]["n_lines"] >= 2
     assert "one-line" not in res.flags
+    # both members lie clear of the bundled sky lines, so the shape stands off the sky too and
+    # the answer is not held back as sky-borne: a resolved [O II] doublet identifies its z on
+    # its own (common practice in z ~ 1 surveys)
+    lam = np.array(OII) * (1 + z)
+    assert not range_mask(lam, sky_ranges(0.3, 3.0, bands=False)).any()
+    assert "sky-overlap" not in res.flags
+    assert res.grade in ("secure", "likely")
 
 
 def test_broad_line_quasar_near_z1_is_graded_on_its_lines():
@@ -263,6 +271,8 @@ def test_lone_broad_bump_is_not_a_quasar_with_missing_lines():
     gone = [r for r in res.extra.get("rejected", []) if r["reason"] == "broad companion line missing"]
     assert gone and all(r["deficit"] > 3.0 for r in gone)
     assert res.grade in ("tentative", "none")
+    # read as [O II] instead, the bump is far broader than a narrow doublet: no shape evidence
+    assert not any(v >= DOUBLET_DCHI2 for v in res.extra.get("doublet_dchi2", {}).values())
 
 
 def test_broad_h_alpha_needs_its_h_beta():

@@ -99,7 +99,8 @@ def doublet_delta_chi2(wave, resid, ivar, centre, *, sigma_inst_kms: float = 60.
     The doublet keeps the members' separation fixed in ln(lambda) (one z), one width for both
     and a ratio ``second/first`` within ``ratio_range`` (boundary values tried when the free
     ratio falls outside). A grid over centre and width is searched for both (vectorised).
-    Returns 0 when too few pixels are usable.
+    Returns 0 when too few pixels are usable, and when the single Gaussian's best width is
+    the grid's widest (four times the separation): a feature that broad is no narrow doublet.
     """
     wave = np.asarray(wave, float)
     resid = np.asarray(resid, float)
@@ -120,7 +121,12 @@ def doublet_delta_chi2(wave, resid, ivar, centre, *, sigma_inst_kms: float = 60.
     mu = centre + S
     # one Gaussian
     g1 = _gauss(x[None, :], mu[:, None], W[:, None])[..., None]
-    chi_single = float(np.min(_best_linear_chi2(g1, r, w)))
+    chi1 = _best_linear_chi2(g1, r, w)
+    chi_single = float(np.min(chi1))
+    if W[int(np.argmin(chi1))] >= widths[-1]:
+        # as broad as the widest trial (a broad-line bump): wider than any narrow doublet, so
+        # its shape says nothing about one
+        return 0.0
     # the doublet: members at mean -/+ half the separation (in ln lambda)
     m1 = mu * math.exp(-0.5 * lnsep)
     m2 = mu * math.exp(0.5 * lnsep)
