@@ -438,7 +438,8 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     if gone:
         res.extra["rejected"] = res.extra.get("rejected", []) + gone
     flags = _flags(best, rows, uniq + peak_fit, prob, p_none, xc, prep, res, cfg,
-                   np.concatenate([evid, [f.dchi2 - cfg.penalty * f.n_active for f, _ in peak_fit]]), shape)
+                   np.concatenate([evid, [f.dchi2 - cfg.penalty * f.n_active for f, _ in peak_fit]]), shape,
+                   linesets=linesets, sig_inst=sig_inst)
     n_ind = cands[0].n_lines
     rival = [e for (f, _), e in zip(uniq[1:], evid[1:]) if not _same_z(f.z, best.z, 300.0)]
     margin = float(evid[0] - max(rival)) if rival else float(evid[0])
@@ -716,7 +717,8 @@ def _broad_companions(f, prep, min_strength: float = 0.15):
     return t
 
 
-def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=None):
+def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=None, *, linesets=None,
+           sig_inst=None):
     flags = []
     n_ind = len(_independent(best, rows, shape=shape))
     if n_ind <= 1:
@@ -741,7 +743,7 @@ def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=
                 and not _xcorr_refuted(top, best, uniq, evid, res.extra.get("rejected", ())):
             flags.append("xcorr-differs")
             own = _nearest_r(xc, best)
-            if not (own >= 4.0):
+            if not (own >= 4.0) and not _reads_doublet_as_one_line(top, best, shape, linesets, sig_inst):
                 flags.append("xcorr-silent")
     rivals = [p for (f, _), p in zip(uniq[1:], prob[1:]) if not _same_z(f.z, best.z, 300.0)]
     if rivals and max(rivals) >= 0.15:
@@ -751,6 +753,31 @@ def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=
     if prep.sigma_from_scatter:
         flags.append("noise-from-scatter")
     return flags
+
+
+def _reads_doublet_as_one_line(peak, best, shape, linesets, sig_inst) -> bool:
+    """True when the answer rests on a measured doublet shape (its only line, see
+    :func:`_doublet_evidence`) and the correlation ``peak`` puts one of its own class's strong
+    lines on that feature: the peak reads the same feature as one Gaussian line, which is the
+    reading the shape test weighed and rejected, so its lack of a peak at the answer's z
+    (templates correlate a lone feature best where their strongest line lands on it) is no
+    further evidence against the answer.
+    """
+    if not shape or linesets is None or sig_inst is None or peak.template_class not in linesets:
+        return False
+    if not any(v >= DOUBLET_DCHI2 for v in shape.values()):
+        return False
+    ls = best.model.ls
+    members = [i for i, nm in enumerate(ls.names) if int(ls.group[i]) in {int(g) for g in shape}]
+    if not members:
+        return False
+    centre = float(np.mean(ls.wave[members])) * (1.0 + best.z)
+    half = 0.5 * math.log(float(np.max(ls.wave[members])) / float(np.min(ls.wave[members])))
+    tol = half + 2.0 * math.hypot(float(sig_inst), float(best.width_kms)) / C_KMS
+    other = linesets[peak.template_class]
+    strong = other.strong if other.strong is not None else np.ones(other.wave.size, bool)
+    lam = other.wave[strong] * (1.0 + peak.z)
+    return bool(np.any(np.abs(np.log(lam / centre)) < tol))
 
 
 def _xcorr_peak_fit(xc, best, uniq, linesets, prep, sig_inst, cfg):
