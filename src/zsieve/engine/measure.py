@@ -688,15 +688,17 @@ def _line_step(f, prep, window_sigma: float = 5.0):
 #: removes. Broad-line Balmer decrements of unreddened type-1 AGN are 3.06 with a scatter of
 #: ~0.03 dex (Dong et al. 2008, MNRAS 383, 581; from memory); an allowance of 3 on the
 #: composite's 0.30/0.09 still admits H-alpha/H-beta up to 10, E(B-V) ~ 1 mag of dust
-#: (Cardelli et al. 1989 extinction curve; from memory).
-ALWAYS_TESTABLE = {"H-beta": 3.0}
+#: (Cardelli et al. 1989 extinction curve; from memory). Each entry names the leader whose
+#: ratio that allowance rests on: beside any other leader (Mg II, whose ratio to H-beta varies
+#: between quasars like that of any two broad lines) the line gets ``COMPANION_ALLOWANCE``.
+ALWAYS_TESTABLE = {"H-beta": ("H-alpha", 3.0)}
 
 
 def _broad_companions(f, prep, min_strength: float = 0.15):
     """:func:`companion_test` on the broad lines of a quasar fit, at the fit's z and widths,
     with the line list's typical strengths (composite relative fluxes). Any broad line may
     lead; only the strong ones (typical strength at least ``min_strength`` of Ly-alpha's:
-    Ly-alpha, C IV, C III], Mg II, H-alpha) and ``ALWAYS_TESTABLE`` can be found missing, and
+    Ly-alpha, C IV, C III], Mg II, H-alpha) and ``ALWAYS_TESTABLE`` (beside its leader) can be found missing, and
     not in the forest."""
     ls = f.model.ls
     strong = np.flatnonzero(ls.broad & (ls.strength > 0))
@@ -708,10 +710,15 @@ def _broad_companions(f, prep, min_strength: float = 0.15):
     # the forest, which can absorb them: they may lead only
     names = [ls.names[i] for i in strong]
     always = np.array([nm in ALWAYS_TESTABLE for nm in names])
-    allowance = [ALWAYS_TESTABLE.get(nm, COMPANION_ALLOWANCE) for nm in names]
+    allowance = [ALWAYS_TESTABLE[nm][1] if nm in ALWAYS_TESTABLE else COMPANION_ALLOWANCE for nm in names]
     testable = ((ls.strength[strong] >= min_strength) | always) & (ls.wave[strong] > LYA_REST - 1.0)
     t = companion_test(prep.wave, prep.resid, prep.ivar, centre, sigma, ls.strength[strong],
                        testable=testable, allowance=allowance)
+    if t is not None and always[t["missing"]] and names[t["lead"]] != ALWAYS_TESTABLE[names[t["missing"]]][0]:
+        # the leader is not the one this line's own allowance rests on: the general one
+        allowance = [COMPANION_ALLOWANCE if a else v for a, v in zip(always, allowance)]
+        t = companion_test(prep.wave, prep.resid, prep.ivar, centre, sigma, ls.strength[strong],
+                           testable=testable, allowance=allowance)
     if t is not None:
         t["lead"], t["missing"] = names[t["lead"]], names[t["missing"]]
     return t
