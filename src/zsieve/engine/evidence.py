@@ -264,7 +264,8 @@ def companion_test(wave, resid, ivar, centres, sigmas_A, strengths, *, testable=
     Ly-alpha 1, C IV 0.25, C III] 0.16, Mg II 0.15). Each flux is measured by
     :func:`fixed_line_flux`; the line of highest S/N leads, and every other observed line clear
     of the leader's profile (4 sigma each) must reach ``strength / strength_lead / allowance``
-    of its flux (``allowance`` a number or one per line); ``testable`` (bool per line, default
+    of its flux (``allowance`` a number, one per line, or a square array whose row is the
+    leader: an allowance that holds beside one leader only); ``testable`` (bool per line, default
     all) limits which lines may count as missing (lines that absorption can remove may still
     lead). Returns None when fewer than
     two lines are observed, the leader's S/N is below ``min_snr`` or no other line can be
@@ -293,7 +294,10 @@ def companion_test(wave, resid, ivar, centres, sigmas_A, strengths, *, testable=
     lead = int(np.argmax(snr))
     if snr[lead] < min_snr:
         return None
-    frac = strengths / strengths[lead] / np.broadcast_to(np.asarray(allowance, float), strengths.shape)
+    allow = np.asarray(allowance, float)
+    if allow.ndim == 2:
+        allow = allow[lead]
+    frac = strengths / strengths[lead] / np.broadcast_to(allow, strengths.shape)
     err = np.hypot(e, frac * e[lead])
     deficit = np.where(ok, (frac * f[lead] - f) / np.where(ok, err, 1.0), -np.inf)
     # a line inside the leader's own profile is not measured apart from it (N V 1240 on the

@@ -710,15 +710,15 @@ def _broad_companions(f, prep, min_strength: float = 0.15):
     # the forest, which can absorb them: they may lead only
     names = [ls.names[i] for i in strong]
     always = np.array([nm in ALWAYS_TESTABLE for nm in names])
-    allowance = [ALWAYS_TESTABLE[nm][1] if nm in ALWAYS_TESTABLE else COMPANION_ALLOWANCE for nm in names]
+    # allowance[leader, line]: the general one, and each ALWAYS_TESTABLE line's own beside its leader
+    allowance = np.full((len(names), len(names)), COMPANION_ALLOWANCE)
+    for j, nm in enumerate(names):
+        if nm in ALWAYS_TESTABLE:
+            partner, own = ALWAYS_TESTABLE[nm]
+            allowance[[i for i, lead in enumerate(names) if lead == partner], j] = own
     testable = ((ls.strength[strong] >= min_strength) | always) & (ls.wave[strong] > LYA_REST - 1.0)
     t = companion_test(prep.wave, prep.resid, prep.ivar, centre, sigma, ls.strength[strong],
                        testable=testable, allowance=allowance)
-    if t is not None and always[t["missing"]] and names[t["lead"]] != ALWAYS_TESTABLE[names[t["missing"]]][0]:
-        # the leader is not the one this line's own allowance rests on: the general one
-        allowance = [COMPANION_ALLOWANCE if a else v for a, v in zip(always, allowance)]
-        t = companion_test(prep.wave, prep.resid, prep.ivar, centre, sigma, ls.strength[strong],
-                           testable=testable, allowance=allowance)
     if t is not None:
         t["lead"], t["missing"] = names[t["lead"]], names[t["missing"]]
     return t
