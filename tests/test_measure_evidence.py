@@ -507,3 +507,53 @@ def test_ca_k_read_on_the_galaxys_h_line_is_refuted():
     assert ratio_floor_test(w, thin, ivar, (k, h), (s, s), CA_HK_FLOOR, sign=-1.0)["deficit"] < 1.0
     lone = -_gauss_flux(w, k, s, 8.0)
     assert ratio_floor_test(w, lone, ivar, (k, h), (s, s), CA_HK_FLOOR, sign=-1.0)["deficit"] > 3.0
+
+
+def test_chi_bar_square_tail_matches_simulated_non_negative_fits():
+    # chi-bar-square law of the summed squared S/N of k non-negative amplitudes fitted to
+    # noise: sum_j C(k, j) 2^-k chi2_j (Kudo 1963, Biometrika 50, 403; from memory), here
+    # against a direct simulation of k independent bounded least-squares amplitudes
+    from zsieve.engine.measure import chibar2_sf
+
+    rng = np.random.default_rng(12)
+    k = 6
+    s = np.sum(np.clip(rng.normal(size=(200_000, k)), 0.0, None) ** 2, axis=1)
+    for t in (2.0, 6.0, 12.0):
+        p_sim = np.mean(s >= t)
+        assert abs(chibar2_sf(t, k) - p_sim) < 4 * math.sqrt(p_sim * (1 - p_sim) / s.size) + 1e-4
+
+
+# vacuum rest wavelengths, NIST ASD (from memory)
+_WEAK_SET = {"H-beta": 4862.683, "[O III] 5008": 5008.240, "[O II] 3729": 3729.875,
+             "[S II] 6718": 6718.29, "[S II] 6733": 6732.67, "H-gamma": 4341.684}
+
+
+def _line_snr(wave, sig, centre, sigma_A, flux):
+    g = _gauss_flux(wave, centre, sigma_A, flux)
+    return float(np.sqrt(np.sum((g / sig) ** 2)))
+
+
+def test_weak_lines_together_count_as_a_second_line():
+    # H-alpha at S/N ~12 with six lines each at S/N ~2.7 (none detectable alone; together
+    # S/N ~6.6, which noise in six bounded amplitudes gives far less often than 1 in 1000,
+    # chi-bar-square law): the reading rests on more than one line. The control without the
+    # weak lines is one line.
+    rng = np.random.default_rng(13)
+    wave = _grid()
+    sig = np.full(wave.size, 0.3)
+    z = 0.31
+    s_kms = 70.0
+    ha = 6564.614 * (1 + z)
+    f_ha = 12.0 / _line_snr(wave, sig, ha, ha * s_kms / C_KMS, 1.0)
+    weak = np.zeros(wave.size)
+    for lam in _WEAK_SET.values():
+        c = lam * (1 + z)
+        weak += _gauss_flux(wave, c, c * s_kms / C_KMS, 2.7 / _line_snr(wave, sig, c, c * s_kms / C_KMS, 1.0))
+    noise = rng.normal(0, 1.0, wave.size) * sig
+    base = 1.0 + _gauss_flux(wave, ha, ha * s_kms / C_KMS, f_ha) + noise
+    cfg = MeasureConfig(n_resamples=30, seed=2)
+    alone = measure(Spectrum(wave, base, sig), cfg)
+    both = measure(Spectrum(wave, base + weak, sig), cfg)
+    assert "one-line" in alone.flags and alone.extra["evidence"]["n_lines"] == 1
+    assert abs(both.z - z) < 1e-3 * (1 + z)
+    assert "one-line" not in both.flags and both.extra["evidence"]["n_lines"] >= 2

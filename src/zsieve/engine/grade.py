@@ -3,8 +3,10 @@
 The evidence of an answer is:
 
 * ``probability`` — fraction of bootstrap resamples that adopt the best candidate;
-* ``n_lines`` — independent lines (fixed-ratio groups count once) measured at S/N >= 3 at
-  the adopted z;
+* ``n_lines`` — independent lines (fixed-ratio groups count once) measured at S/N >= 4 at
+  the adopted z; a measured [O II] doublet shape counts as a second line, and so do the
+  remaining weaker lines taken together when pure noise would give their summed squared S/N
+  less often than 1 in 1000 (chi-bar-square law, :func:`zsieve.engine.measure.chibar2_sf`);
 * ``evidence`` — the best candidate's penalised chi-square improvement over the continuum;
 * ``margin`` — its evidence minus that of the best rival at a different z;
 * flags (names are zsieve's own):

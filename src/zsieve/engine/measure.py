@@ -472,7 +472,7 @@ def _n_independent(fit: CandidateFit, rows, shape=None) -> int:
     if rows is None:
         gs = group_snr(fit)
         return int((gs >= 4.0).sum())
-    return len(_independent(fit, rows, shape=shape))
+    return len(_independent(fit, rows, shape=shape, weak=True))
 
 
 def _nearest_r(xc, fit):
@@ -492,14 +492,16 @@ def _origin(seed, xc, fit):
     return "xcorr" if from_x else "lines"
 
 
-def _independent(best, rows, min_snr=4.0, off_sky_only=False, shape=None):
+def _independent(best, rows, min_snr=4.0, off_sky_only=False, shape=None, weak=False):
     """Independent lines of the best fit measured at S/N >= min_snr (optionally off the sky).
 
     Members of a fixed-ratio group count once, at their combined S/N (quadrature sum: a
     doublet split between two members is one line of the total S/N). A doublet whose *shape*
     is measured (``shape``: group -> chi-square gain of the doublet over one Gaussian of free
     width, :func:`_doublet_evidence`) counts as two: its spacing identifies the line (design:
-    "use the doublet shape").
+    "use the doublet shape"). With ``weak``, the remaining lines, each below ``min_snr``,
+    count once together when noise would give their summed signal less often than
+    ``WEAK_SET_P`` (:func:`weak_lines_tail`).
     """
     ls = best.model.ls
     sky = sky_ranges(0.3, 3.0, bands=False)
@@ -522,7 +524,69 @@ def _independent(best, rows, min_snr=4.0, off_sky_only=False, shape=None):
     for g, dchi2 in (shape or {}).items():
         if int(g) in out and dchi2 >= DOUBLET_DCHI2:
             out.add(("doublet", int(g)))
+    if weak and out and weak_lines_tail(best, out, off_sky_only=off_sky_only) < WEAK_SET_P:
+        out.add("weak-set")
     return out
+
+
+#: Chance probability below which the lines of a reading that are each too weak to count
+#: (S/N < 4), taken together, count as one more line: the tail of their summed squared S/N
+#: under the chi-bar-square law that non-negative amplitudes fitted to pure noise follow.
+WEAK_SET_P = 1e-3
+
+
+def chibar2_sf(s: float, k: int) -> float:
+    """P(sum of squared S/N >= s) for ``k`` independent non-negative amplitudes fitted to noise.
+
+    Each amplitude is zero with probability 1/2 (the bound is active) and otherwise its squared
+    S/N is chi-square with one degree of freedom, so the sum is the chi-bar-square mixture
+    sum_j C(k, j) 2^-k chi2_j (Kudo 1963, Biometrika 50, 403; from memory).
+
+    >>> round(chibar2_sf(2.706, 1), 3)   # half of the chi2_1 tail at its 10% point
+    0.05
+    >>> round(chibar2_sf(0.0, 3), 6)    # all but the all-zero case, 1 - 1/8
+    0.875
+    """
+    from scipy.stats import binom, chi2
+
+    if k <= 0:
+        return 1.0
+    j = np.arange(1, k + 1)
+    return float(np.sum(binom.pmf(j, k, 0.5) * chi2.sf(s, j)))
+
+
+def weak_lines_tail(fit: CandidateFit, counted, off_sky_only: bool = False) -> float:
+    """Chance probability of the signal in the narrow line groups of ``fit`` not in ``counted``.
+
+    The groups' joint-fit S/N (:func:`~zsieve.engine.refine.group_snr`, zero where the
+    amplitude sits on its bound) are squared and summed, and the sum is referred to
+    :func:`chibar2_sf` with one term per group the model holds (present on good pixels), so
+    that a reading with many lines in range gets no credit for the noise its free amplitudes
+    absorb. With ``off_sky_only``, groups with a member on a bright sky line (or, absorbing,
+    in a telluric band) are left out.
+    """
+    m = fit.model
+    if not m.groups.size:
+        return 1.0
+    use, inv = m._use, m._inv
+    ncol = m.groups.size
+    broad = np.bincount(inv, weights=m.ls.broad[use].astype(float), minlength=ncol) > 0
+    lead = np.isin(m.ls.group[use], [g for g in counted if isinstance(g, (int, np.integer))])
+    keep = ~broad & (np.bincount(inv, weights=lead.astype(float), minlength=ncol) == 0)
+    if lead.any():  # a group on the wings of a counted line may be taking its flux, not its own
+        lam = m.ls.wave[use] * (1.0 + fit.z)
+        sig = lam * m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
+        near = np.abs(lam[:, None] - lam[lead][None, :]) < 3.0 * (sig[:, None] + sig[lead][None, :])
+        keep &= np.bincount(inv, weights=near.any(axis=1).astype(float), minlength=ncol) == 0
+    if off_sky_only:
+        lam = m.ls.wave[use] * (1.0 + fit.z)
+        on = range_mask(lam, sky_ranges(0.3, 3.0, bands=False))
+        on |= (m.ls.sign[use] < 0) & range_mask(lam, sky_ranges(2.0, 0.0, bands=True, band_min_depth=0.2))
+        keep &= np.bincount(inv, weights=on.astype(float), minlength=ncol) == 0
+    if not keep.any():
+        return 1.0
+    snr = np.clip(group_snr(fit)[keep], 0.0, None)
+    return chibar2_sf(float(np.sum(snr**2)), int(keep.sum()))
 
 
 def _group_snr_by_group(fit) -> dict:
@@ -727,7 +791,7 @@ def _broad_companions(f, prep, min_strength: float = 0.15):
 def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=None, *, linesets=None,
            sig_inst=None):
     flags = []
-    n_ind = len(_independent(best, rows, shape=shape))
+    n_ind = len(_independent(best, rows, shape=shape, weak=True))
     if n_ind <= 1:
         flags.append("one-line")
     strong = max(rows, key=lambda r: r["snr"]) if rows else None
@@ -735,7 +799,7 @@ def _flags(best, rows, uniq, prob, p_none, xc, prep, res, cfg, evid=None, shape=
         lam = strong["observed_wavelength"]
         # the answer leans on the sky when fewer than two independent lines stand off it (a
         # measured doublet shape counts off the sky when its group does)
-        n_off = len(_independent(best, rows, off_sky_only=True, shape=shape))
+        n_off = len(_independent(best, rows, off_sky_only=True, shape=shape, weak=True))
         if n_off < 2 and n_ind >= 1 and n_off < n_ind:
             flags.append("sky-overlap")
         if lam - prep.wave[0] < 20.0 or prep.wave[-1] - lam < 20.0:
