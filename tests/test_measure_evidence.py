@@ -557,3 +557,55 @@ def test_weak_lines_together_count_as_a_second_line():
     assert "one-line" in alone.flags and alone.extra["evidence"]["n_lines"] == 1
     assert abs(both.z - z) < 1e-3 * (1 + z)
     assert "one-line" not in both.flags and both.extra["evidence"]["n_lines"] >= 2
+
+
+# the water band 8130-8350 A in air (common practice, from memory; linelists/sky.ecsv), here
+# shifted to vacuum by the IAU/Morton air-vacuum relation (n - 1 ~ 2.8e-4 near 8200 A)
+_H2O_8200_VAC = (8132.2, 8352.3)
+
+
+def _oii_in_water_band(rng, z=1.21, dip=0.05):
+    # a lone [O II] doublet (NIST vacuum, from memory) at 8237/8243 A on a continuum that an
+    # imperfect telluric correction leaves 5% low across the whole band
+    wave = _grid()
+    inside = (wave > _H2O_8200_VAC[0]) & (wave < _H2O_8200_VAC[1])
+    f = (5.0 + _oii(wave, z, total=300.0, sigma_kms=70.0)) * np.where(inside, 1.0 - dip, 1.0)
+    return Spectrum(wave, f + rng.normal(0, 1.0, wave.size) * 0.5, np.full(wave.size, 0.5)), inside
+
+
+def test_emission_lines_inside_a_shallow_telluric_band_are_measured():
+    rng = np.random.default_rng(16)
+    z = 1.21
+    spec, inside = _oii_in_water_band(rng, z)
+    res = measure(spec, MeasureConfig(n_resamples=20, seed=1))
+    assert abs(res.z - z) < 1e-3 * (1 + z)
+    assert any(m.name.startswith("[O II]") and _H2O_8200_VAC[0] < m.observed_wavelength < _H2O_8200_VAC[1]
+               for m in res.lines)
+    assert res.grade != "none"
+    # with the band closed to emission lines too, the doublet is not there to be found
+    shut = measure(spec, MeasureConfig(n_resamples=20, seed=1, emission_in_bands=False))
+    assert not any(_H2O_8200_VAC[0] < m.observed_wavelength < _H2O_8200_VAC[1] for m in shut.lines)
+
+
+def test_telluric_band_pixels_stay_closed_to_absorption_readings():
+    # an uncorrected band (here 10% deep, no lines at all) is absorption the sky made: no
+    # absorption feature is detected in it and absorbing classes never fit its pixels, while
+    # its noise carries the correction residual for the emission lines that may sit in it
+    from zsieve.engine.prepare import BAND_RESIDUAL, prepare
+
+    rng = np.random.default_rng(17)
+    wave = _grid()
+    inside = (wave > _H2O_8200_VAC[0] + 5) & (wave < _H2O_8200_VAC[1] - 5)
+    f = 5.0 * np.where(inside, 0.9, 1.0) + rng.normal(0, 0.05, wave.size)
+    spec = Spectrum(wave, f, np.full(wave.size, 0.05))
+    prep = prepare(spec)
+    opened = inside & ~range_mask(wave, sky_ranges(0.2, 4.0, bands=False))  # bright sky lines stay out
+    assert opened.sum() > 0.8 * inside.sum()
+    assert np.all(prep.ivar[opened] > 0) and np.all(prep.for_class("star").ivar[inside] == 0)
+    assert np.all(prep.for_class("absorption-galaxy").ivar[inside] == 0)
+    # sigma = hypot(noise, residual x depth 0.4 x continuum 5)
+    assert np.allclose(prep.sigma[opened], np.hypot(0.05, BAND_RESIDUAL * 0.4 * 5.0), rtol=0.05)
+    res = measure(spec, MeasureConfig(n_resamples=20, seed=1))
+    assert not [ft for ft in res.features if ft["kind"] == "absorption"
+                and _H2O_8200_VAC[0] < ft["centroid"] < _H2O_8200_VAC[1]]
+    assert res.grade in ("tentative", "none")

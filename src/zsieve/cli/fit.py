@@ -42,7 +42,7 @@ Options on the command line override the file.
 #: Options a config file may set, with their built-in defaults (None = the engine's default).
 DEFAULTS = {
     "z_min": None, "z_max": None, "classes": None, "linelist": None, "medium": None,
-    "resamples": None, "seed": None, "mask": None, "sky_mask": None, "snr_threshold": None,
+    "resamples": None, "seed": None, "mask": None, "sky_mask": None, "band_lines": None, "snr_threshold": None,
     "cosmology": None, "H0": None, "Om0": None, "Ode0": None, "w0": None, "Tcmb0": None,
     "jobs": None, "figures": True, "pdf": False, "force": False, "strict": False, "keep_hand": True,
     "progress": None, "scheduler": None,
@@ -79,6 +79,9 @@ def register(subparsers) -> argparse.ArgumentParser:
                    help="leave out a vacuum wavelength range in Angstrom (repeatable), e.g. 7590-7630")
     g.add_argument("--no-sky-mask", dest="sky_mask", action="store_false", default=S,
                    help="do not mask bright night-sky lines and telluric bands")
+    g.add_argument("--close-bands", dest="band_lines", action="store_false", default=S,
+                   help="mask the shallow telluric bands for emission lines too (by default emission "
+                        "lines are measured in them, with a correction residual in their noise)")
     c = p.add_argument_group("cosmology (as in `zsieve distances`)")
     c.add_argument("--cosmology", metavar="NAME", default=S, help="astropy realization name (default Planck18)")
     for name, what in (("H0", "Hubble constant, km/s/Mpc"), ("Om0", "matter density today"),
@@ -190,6 +193,8 @@ def _settings(opts: dict):
         cfg["extra_masks"] = tuple(_mask(m) for m in masks)
     if opts["sky_mask"] is not None:
         cfg["mask_sky"] = bool(opts["sky_mask"])
+    if opts["band_lines"] is not None:
+        cfg["emission_in_bands"] = bool(opts["band_lines"])
     ns = argparse.Namespace(**{k: (None if opts[k] is None else str(opts[k]))
                                for k in ("cosmology", "H0", "Om0", "Ode0", "w0", "Tcmb0")})
     cosmology = _cosmology_spec(ns)

@@ -39,6 +39,11 @@ class MeasureConfig:
     sky_min_strength : float
         Only sky lines at least this strong (0-1 scale of the sky list) are masked (and
         telluric absorption bands at least ``max(this, 0.4)``).
+    emission_in_bands : bool
+        Measure the narrow emission lines of galaxies inside the shallow telluric bands (depth
+        < 0.6 in the sky list), with a correction residual added to their noise; absorption
+        lines, quasar lines and the correlation never use band pixels
+        (:meth:`zsieve.engine.prepare.Prepared.for_class`).
     extra_masks : tuple of (lo, hi)
         More wavelength ranges (vacuum Angstrom) to leave out.
     resolution_kms : float or None
@@ -65,6 +70,7 @@ class MeasureConfig:
     linelist: object = None
     mask_sky: bool = True
     sky_min_strength: float = 0.2
+    emission_in_bands: bool = True
     extra_masks: tuple = ()
     resolution_kms: float | None = None
     continuum_kms: float = 8000.0

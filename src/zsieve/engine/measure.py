@@ -126,6 +126,7 @@ def _z_window(seed: Seed, cfg):
 
 
 def _quick_score(ls, z, prep, sig_inst, width, penalty):
+    prep = prep.for_class(ls.cls)
     m = LineModel(ls, prep.wave, prep.ivar, sig_inst, z, width, good_cs=prep.good_cs)
     if m.n_cols == 0:
         return -np.inf, 0
@@ -167,7 +168,9 @@ def _xcorr(prep, cfg, sig_inst, fits_z_range):
     except ValueError as exc:
         log.info("no templates for this range: %s", exc)
         return None
-    f, w = lmap.apply(prep.resid[None, :], prep.ivar)
+    # the correlation's templates hold absorption lines too: no telluric band pixels
+    pc = prep.closed
+    f, w = lmap.apply(pc.resid[None, :], pc.ivar)
     weight = np.sqrt(w)
     try:
         peaks, curves = correlate_batch(f, weight, lmap.grid, bank, zlo, zhi, n_peaks=3, return_curves=True)
@@ -219,7 +222,8 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         spectrum = spectrum.replace(flux=spectrum.flux / scale, sigma=spectrum.sigma / scale)
     res.extra["flux_scale"] = scale
     prep = prepare(spectrum, mask_sky=cfg.mask_sky, extra_masks=cfg.extra_masks,
-                   sky_min_strength=cfg.sky_min_strength, continuum_kms=cfg.continuum_kms)
+                   sky_min_strength=cfg.sky_min_strength, continuum_kms=cfg.continuum_kms,
+                   open_bands_to_emission=cfg.emission_in_bands)
     ok = prep.ivar > 0
     if ok.sum() < 50:
         res.status = "failed"
@@ -231,6 +235,10 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     sky_win = range_mask(prep.wave, sky_ranges(0.3, 2.0, bands=False))
     feats = detect_features(prep.wave, prep.resid, prep.ivar, prep.continuum,
                             threshold=cfg.snr_threshold, sky=sky_win)
+    if prep.open_band is not None:  # the bands are open to emission lines only
+        ob = prep.open_band
+        feats = [f for f in feats if f.kind == "emission"
+                 or not ob[min(int(np.searchsorted(prep.wave, f.centroid)), ob.size - 1)]]
     res.features = [_unscale(f.to_dict(), scale) for f in feats]
     sig_inst = _resolution(cfg, feats, prep.dv_kms)
 
@@ -288,8 +296,9 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         key = (s.cls, z0, z_tol, scan)
         if key not in done:
             # no formal error yet: most of these fits are dropped below (with_formal_error adds it)
-            done[key] = refine(linesets[s.cls], z0, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst,
-                               z_tol=z_tol, scan=scan, polish=False, good_cs=prep.good_cs, error=False)
+            pc = prep.for_class(s.cls)
+            done[key] = refine(linesets[s.cls], z0, pc.wave, pc.resid, pc.ivar, sigma_inst_kms=sig_inst,
+                               z_tol=z_tol, scan=scan, polish=False, good_cs=pc.good_cs, error=False)
         fit = done[key]
         if not fit.ok or fit.n_active == 0:
             return None
@@ -341,9 +350,10 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
         zt = _z_window(s, cfg) or 3.0 * max(f.z_err, 1e-5 * (1 + f.z))
         if not np.isfinite(zt):
             continue
-        g = refine(linesets[f.cls], f.z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst,
+        pc = prep.for_class(f.cls)
+        g = refine(linesets[f.cls], f.z, pc.wave, pc.resid, pc.ivar, sigma_inst_kms=sig_inst,
                    z_tol=zt if f.cls != "star" else STAR_MAX_KMS / C_KMS, width0=f.width_kms, scan=False, polish=True,
-                   good_cs=prep.good_cs)
+                   good_cs=pc.good_cs)
         if g.ok and g.n_active and g.dchi2 - cfg.penalty * g.n_active >= f.dchi2 - cfg.penalty * f.n_active - 1e-6:
             uniq[k] = (g, s)
     uniq = ranked(uniq)
@@ -379,7 +389,8 @@ def _measure(spectrum, config: MeasureConfig | None) -> FitResult:
     best, best_seed = uniq[0]
 
     # ---------------------------------------------------------------- lines, bound, systemic
-    rows = line_table(best, prep.wave, prep.resid, prep.ivar, prep.continuum, min_snr=2.0)
+    pb = prep.for_class(best.cls)
+    rows = line_table(best, pb.wave, pb.resid, pb.ivar, pb.continuum, min_snr=2.0)
     shape = _doublet_evidence(best, rows, prep, sig_inst)
     if shape:
         res.extra["doublet_dchi2"] = shape
@@ -524,7 +535,7 @@ def _independent(best, rows, min_snr=4.0, off_sky_only=False, shape=None, weak=F
     for g, dchi2 in (shape or {}).items():
         if int(g) in out and dchi2 >= DOUBLET_DCHI2:
             out.add(("doublet", int(g)))
-    if weak and out and weak_lines_tail(best, out, off_sky_only=off_sky_only) < WEAK_SET_P:
+    if weak and out and weak_lines_tail(best, out) < WEAK_SET_P:
         out.add("weak-set")
     return out
 
@@ -555,15 +566,17 @@ def chibar2_sf(s: float, k: int) -> float:
     return float(np.sum(binom.pmf(j, k, 0.5) * chi2.sf(s, j)))
 
 
-def weak_lines_tail(fit: CandidateFit, counted, off_sky_only: bool = False) -> float:
+def weak_lines_tail(fit: CandidateFit, counted) -> float:
     """Chance probability of the signal in the narrow line groups of ``fit`` not in ``counted``.
 
     The groups' joint-fit S/N (:func:`~zsieve.engine.refine.group_snr`, zero where the
     amplitude sits on its bound) are squared and summed, and the sum is referred to
     :func:`chibar2_sf` with one term per group the model holds (present on good pixels), so
     that a reading with many lines in range gets no credit for the noise its free amplitudes
-    absorb. With ``off_sky_only``, groups with a member on a bright sky line (or, absorbing,
-    in a telluric band) are left out.
+    absorb. That law holds where the uncertainty array describes the noise, so groups with a
+    member on a bright sky line or in a telluric band (whose residuals are partly systematic)
+    are left out: on 2,000 mocks a weak H-gamma in the water band at 8130-8350 A had made a lone
+    H-alpha a `likely` H-beta.
     """
     m = fit.model
     if not m.groups.size:
@@ -573,16 +586,14 @@ def weak_lines_tail(fit: CandidateFit, counted, off_sky_only: bool = False) -> f
     broad = np.bincount(inv, weights=m.ls.broad[use].astype(float), minlength=ncol) > 0
     lead = np.isin(m.ls.group[use], [g for g in counted if isinstance(g, (int, np.integer))])
     keep = ~broad & (np.bincount(inv, weights=lead.astype(float), minlength=ncol) == 0)
+    lam = m.ls.wave[use] * (1.0 + fit.z)
     if lead.any():  # a group on the wings of a counted line may be taking its flux, not its own
-        lam = m.ls.wave[use] * (1.0 + fit.z)
         sig = lam * m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
         near = np.abs(lam[:, None] - lam[lead][None, :]) < 3.0 * (sig[:, None] + sig[lead][None, :])
         keep &= np.bincount(inv, weights=near.any(axis=1).astype(float), minlength=ncol) == 0
-    if off_sky_only:
-        lam = m.ls.wave[use] * (1.0 + fit.z)
-        on = range_mask(lam, sky_ranges(0.3, 3.0, bands=False))
-        on |= (m.ls.sign[use] < 0) & range_mask(lam, sky_ranges(2.0, 0.0, bands=True, band_min_depth=0.2))
-        keep &= np.bincount(inv, weights=on.astype(float), minlength=ncol) == 0
+    on = range_mask(lam, sky_ranges(0.3, 3.0, bands=False))
+    on |= range_mask(lam, sky_ranges(2.0, 0.0, bands=True, band_min_depth=0.2))  # bands only
+    keep &= np.bincount(inv, weights=on.astype(float), minlength=ncol) == 0
     if not keep.any():
         return 1.0
     snr = np.clip(group_snr(fit)[keep], 0.0, None)
@@ -677,6 +688,7 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
     (``CA_HK_FLOOR``); emission-galaxy readings whose strongest lines stand on a continuum
     step or hump (:func:`_line_step`, ``PEDESTAL_MAX``); quasar readings whose strong broad lines
     are missing beside the strongest (:func:`companion_test`)."""
+    prep = prep.for_class(f.cls)
     names = [f.model.ls.names[l] for l in f.active_lines]
     # only for a reading resting on one or two lines with H-alpha missing from the fit: a
     # fitted H-alpha, even weaker than case B (flux calibration, blends), supports it, and a
@@ -864,8 +876,9 @@ def _xcorr_peak_fit(xc, best, uniq, linesets, prep, sig_inst, cfg):
         return []
     s = Seed(float(top.z), top.template_class, "xcorr", score=0.0, r_tdr=float(top.r_tdr))
     zt = STAR_MAX_KMS / C_KMS if s.cls == "star" else None
-    fit = refine(linesets[s.cls], s.z, prep.wave, prep.resid, prep.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
-                 scan=True, polish=False, good_cs=prep.good_cs)
+    pc = prep.for_class(s.cls)
+    fit = refine(linesets[s.cls], s.z, pc.wave, pc.resid, pc.ivar, sigma_inst_kms=sig_inst, z_tol=zt,
+                 scan=True, polish=False, good_cs=pc.good_cs)
     if not fit.ok:
         return []
     return [(fit, s)]

@@ -457,7 +457,8 @@ class RefitSession:
             base = self._base_config(st.item)
             prep = prepare(self.spectrum, mask_sky=st.mask_sky,
                            extra_masks=tuple(st.masks) + tuple(base.extra_masks or ()),
-                           sky_min_strength=base.sky_min_strength, continuum_kms=base.continuum_kms)
+                           sky_min_strength=base.sky_min_strength, continuum_kms=base.continuum_kms,
+                           open_bands_to_emission=base.emission_in_bands)
             self._prepared = (key, prep)
         return self._prepared[1]
 

@@ -83,7 +83,8 @@ def _prepare(spectrum, result):
     cfg = (_get(result, "provenance") or {}).get("config") or {}
     kw = {k: float(cfg[k]) for k in ("sky_min_strength", "continuum_kms") if cfg.get(k) is not None}
     masks = [tuple(m) for m in cfg.get("extra_masks") or ()]
-    return prepare(spectrum, mask_sky=bool(cfg.get("mask_sky", True)), extra_masks=masks, **kw)
+    return prepare(spectrum, mask_sky=bool(cfg.get("mask_sky", True)), extra_masks=masks,
+                   open_bands_to_emission=bool(cfg.get("emission_in_bands", True)), **kw)
 
 
 def _gaussians(wave: np.ndarray, lines: Sequence[Any]) -> np.ndarray:
