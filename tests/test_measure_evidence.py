@@ -609,3 +609,52 @@ def test_telluric_band_pixels_stay_closed_to_absorption_readings():
     assert not [ft for ft in res.features if ft["kind"] == "absorption"
                 and _H2O_8200_VAC[0] < ft["centroid"] < _H2O_8200_VAC[1]]
     assert res.grade in ("tentative", "none")
+
+
+@pytest.mark.parametrize("sigma_kms, at_limit", [(100.0, False), (1500.0, True)])
+def test_humps_broader_than_narrow_lines_are_not_graded_as_narrow_lines(sigma_kms, at_limit):
+    # H-beta, [O III] 5008 and H-alpha (NIST vacuum, from memory) at z = 0.2, once as galaxy
+    # lines (sigma 100 km/s) and once as humps of sigma 1500 km/s: narrow-line regions of
+    # galaxies have sigma of tens to a few hundred km/s (common practice), so humps that the
+    # emission model fits only at its largest width are no narrow lines to be sure of
+    from zsieve.engine.refine import WIDTH_LIMITS_KMS
+
+    rng = np.random.default_rng(18)
+    wave = _grid()
+    z = 0.2
+    f = np.full(wave.size, 2.0)
+    for lam, flux in ((4862.683, 60.0), (5008.240, 150.0), (6564.614, 200.0)):
+        c = lam * (1 + z)
+        f += _gauss_flux(wave, c, c * sigma_kms / C_KMS, flux)
+    # without the quasar class (which takes the humps as broad lines, rightly), so that the
+    # galaxy model must answer
+    res = measure(Spectrum(wave, f + rng.normal(0, 0.3, wave.size), np.full(wave.size, 0.3)),
+                  MeasureConfig(n_resamples=20, seed=1, classes=("emission-galaxy", "absorption-galaxy", "star")))
+    if at_limit:
+        assert res.template == "emission-galaxy"
+        assert res.extra["line_width_kms"] >= 0.99 * WIDTH_LIMITS_KMS["emission-galaxy"][1]
+        assert "width-limit" in res.flags and res.grade in ("tentative", "none")
+    else:
+        assert res.template == "emission-galaxy" and abs(res.z - z) < 1e-3 * (1 + z)
+        assert "width-limit" not in res.flags and res.grade == "secure"
+
+
+@pytest.mark.parametrize("with_h_gamma", [True, False])
+def test_balmer_troughs_without_h_gamma_are_no_star(with_h_gamma):
+    # broad absorption at H9, H8 and H-delta (NIST vacuum, from memory) at rest: a star's
+    # Balmer series has H-gamma at least as deep (A-G stars; common practice, from memory), so
+    # without it the troughs are something else (the forest of a quasar, read at z = 0)
+    rng = np.random.default_rng(19)
+    wave = _grid()
+    f = np.full(wave.size, 10.0)
+    lines = [(3836.47, 60.0), (3890.15, 80.0), (4102.89, 90.0)] + ([(4341.68, 100.0)] if with_h_gamma else [])
+    for lam, ew in lines:
+        f -= 10.0 * _gauss_flux(wave, lam, 12.0, ew)
+    res = measure(Spectrum(wave, f + rng.normal(0, 0.2, wave.size), np.full(wave.size, 0.2)),
+                  MeasureConfig(n_resamples=20, seed=1))
+    refuted = [r for r in res.extra.get("rejected", []) if r["template"] == "star"
+               and r["reason"].startswith("H-gamma weaker than")]
+    if with_h_gamma:
+        assert not refuted and res.template == "star" and abs(res.z) * C_KMS < 500.0
+    else:
+        assert refuted and res.template != "star"

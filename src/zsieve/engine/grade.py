@@ -20,6 +20,9 @@ The evidence of an answer is:
   ``xcorr-silent``    ... and the adopted candidate has no correlation peak of its own (r < 4);
   ``close-rival``     a rival at another z keeps >= 15% of the resamples;
   ``often-nothing``   >= 20% of resamples find no candidate at all;
+  ``width-limit``     an emission-line galaxy's lines reach the largest width its model allows
+                      (sigma 400 km/s): the data want features broader than narrow lines, such
+                      as the humps of a continuum the fit could not follow;
   ``noise-from-scatter`` the file had no uncertainties (noise estimated from the flux scatter).
 
 Thresholds (``GRADE_RULES``) were set by measuring on the mock benchmark
@@ -54,15 +57,15 @@ from __future__ import annotations
 __all__ = ["FLAGS", "GRADE_RULES", "decide_grade"]
 
 FLAGS = ("one-line", "sky-overlap", "at-edge", "faint", "xcorr-differs", "xcorr-silent", "close-rival",
-         "often-nothing", "noise-from-scatter")
+         "often-nothing", "width-limit", "noise-from-scatter")
 
 #: Minimum evidence for each grade, calibrated on the mock benchmark.
 GRADE_RULES = {
     "secure": dict(probability=0.97, n_lines=2, evidence=80.0, margin=40.0,
                    forbid=("one-line", "sky-overlap", "xcorr-differs", "close-rival", "often-nothing",
-                           "faint", "noise-from-scatter")),
+                           "faint", "width-limit", "noise-from-scatter")),
     "likely": dict(probability=0.80, n_lines=2, evidence=30.0, margin=10.0,
-                   forbid=("one-line", "sky-overlap", "often-nothing", "xcorr-silent")),
+                   forbid=("one-line", "sky-overlap", "often-nothing", "xcorr-silent", "width-limit")),
     "tentative": dict(probability=0.4, n_lines=1, evidence=20.0, margin=0.0, forbid=()),
 }
 
