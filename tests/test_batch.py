@@ -285,3 +285,21 @@ def test_two_workers_same_rows(tmp_path, fitted):
     ok = t1["status"] == "ok"
     assert list(t1["status"]) == list(t2["status"])
     np.testing.assert_allclose(t1["z"][ok], t2["z"][ok], rtol=0, atol=1e-12)  # same seed: same answers
+
+
+def test_close_bands_reaches_the_engine_and_its_record(tmp_path):
+    # `--close-bands` masks the shallow telluric bands for emission lines too; the record's
+    # provenance says which preparation the answer came from
+    from zsieve.io import write_text
+    from zsieve.simulate import mock_spectrum
+
+    spec, _ = mock_spectrum("emission-galaxy", 0.3, 20.0, rng=5)
+    data = tmp_path / "in"
+    data.mkdir()
+    write_text(spec, data / "g.csv")
+    for extra, want in (([], True), (["--close-bands"], False)):
+        out = tmp_path / f"out{len(extra)}"
+        assert main(["fit", str(data), "--out", str(out), "--resamples", "10", "--no-figures", "--jobs", "1",
+                     "--no-progress", *extra]) == 0
+        rec = json.loads(next((out / "objects").glob("*.json")).read_text())
+        assert rec["provenance"]["config"]["emission_in_bands"] is want
