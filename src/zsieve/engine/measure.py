@@ -515,10 +515,9 @@ def _independent(best, rows, min_snr=4.0, off_sky_only=False, shape=None, weak=F
     ``WEAK_SET_P`` (:func:`weak_lines_tail`).
     """
     ls = best.model.ls
-    sky = sky_ranges(0.3, 3.0, bands=False)
     # an absorption line inside a telluric band, even a shallow one the mask leaves, may be
     # the band's own residual
-    tell = sky_ranges(2.0, 0.0, bands=True, band_min_depth=0.2)
+    sky, tell = _sky_windows()
     joint = _group_snr_by_group(best)
     snr2: dict[int, float] = {}
     for r in rows:
@@ -538,6 +537,12 @@ def _independent(best, rows, min_snr=4.0, off_sky_only=False, shape=None, weak=F
     if weak and out and weak_lines_tail(best, out) < WEAK_SET_P:
         out.add("weak-set")
     return out
+
+
+def _sky_windows():
+    """``(sky lines, telluric bands)`` a matched line may stand on: bright sky lines (strength
+    >= 0.3, padded 3 A) and the absorption bands at least 0.2 deep (also those left unmasked)."""
+    return sky_ranges(0.3, 3.0, bands=False), sky_ranges(2.0, 0.0, bands=True, band_min_depth=0.2)
 
 
 #: Chance probability below which the lines of a reading that are each too weak to count
@@ -591,8 +596,8 @@ def weak_lines_tail(fit: CandidateFit, counted) -> float:
         sig = lam * m._sigma_v(fit.width_kms, fit.broad_scale)[use] / C_KMS
         near = np.abs(lam[:, None] - lam[lead][None, :]) < 3.0 * (sig[:, None] + sig[lead][None, :])
         keep &= np.bincount(inv, weights=near.any(axis=1).astype(float), minlength=ncol) == 0
-    on = range_mask(lam, sky_ranges(0.3, 3.0, bands=False))
-    on |= range_mask(lam, sky_ranges(2.0, 0.0, bands=True, band_min_depth=0.2))  # bands only
+    sky, tell = _sky_windows()
+    on = range_mask(lam, sky) | range_mask(lam, tell)
     keep &= np.bincount(inv, weights=on.astype(float), minlength=ncol) == 0
     if not keep.any():
         return 1.0
@@ -685,9 +690,11 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
     than any forest); emission-galaxy
     readings with H-beta but no fitted H-alpha where case-B recombination requires one
     (:func:`balmer_test`); absorption-galaxy readings with Ca II K but Ca II H below half of it
-    (``CA_HK_FLOOR``); emission-galaxy readings whose strongest lines stand on a continuum
+    (``CA_HK_FLOOR``); star readings with H8 or H-delta but H-gamma below half of it
+    (``STAR_HG_FLOOR``); emission-galaxy readings whose strongest lines stand on a continuum
     step or hump (:func:`_line_step`, ``PEDESTAL_MAX``); quasar readings whose strong broad lines
-    are missing beside the strongest (:func:`companion_test`)."""
+    are missing beside the strongest (:func:`companion_test`). Each test runs on the pixels of
+    the reading's class (:meth:`~zsieve.engine.prepare.Prepared.for_class`)."""
     prep = prep.for_class(f.cls)
     names = [f.model.ls.names[l] for l in f.active_lines]
     # only for a reading resting on one or two lines with H-alpha missing from the fit: a

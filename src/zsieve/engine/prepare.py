@@ -99,22 +99,31 @@ def sky_ranges(min_strength: float = 0.2, pad_A: float = 4.0, bands: bool = True
     return out.copy()
 
 
-@lru_cache(maxsize=32)
-def _sky_ranges_cached(min_strength: float, pad_A: float, bands: bool, depth: float) -> np.ndarray:
-    """:func:`sky_ranges` of the bundled sky list, read once per argument set."""
+@lru_cache(maxsize=1)
+def _sky_table():
+    """The bundled sky list as arrays ``(lo, hi, strength, is_line, is_absorption_band)``
+    (vacuum Angstrom), read once; None if it is unavailable."""
     try:
         from zsieve.lines import sky_features
     except ImportError:
         log.warning("zsieve.lines.sky_features is not available; no sky masking")
-        return np.zeros((0, 2))
+        return None
     tab = sky_features()
-    strength = np.asarray(tab["strength"], dtype=float)
     kind = np.array([str(k) for k in tab["kind"]])
     absorb = np.array(["absorption" in str(s).lower() for s in tab["source"]])
-    lo = np.asarray(tab["wave_lo_vac"], dtype=float)
-    hi = np.asarray(tab["wave_hi_vac"], dtype=float)
-    is_line = (kind == "line") & (strength >= min_strength)
-    is_band = (kind == "band") & absorb & (strength >= depth) & bands
+    return (np.asarray(tab["wave_lo_vac"], dtype=float), np.asarray(tab["wave_hi_vac"], dtype=float),
+            np.asarray(tab["strength"], dtype=float), kind == "line", (kind == "band") & absorb)
+
+
+@lru_cache(maxsize=32)
+def _sky_ranges_cached(min_strength: float, pad_A: float, bands: bool, depth: float) -> np.ndarray:
+    """:func:`sky_ranges` of the bundled sky list, read once per argument set."""
+    tab = _sky_table()
+    if tab is None:
+        return np.zeros((0, 2))
+    lo, hi, strength, line, band = tab
+    is_line = line & (strength >= min_strength)
+    is_band = band & (strength >= depth) & bands
     return np.concatenate([np.column_stack([lo[is_line] - pad_A, hi[is_line] + pad_A]),
                            np.column_stack([lo[is_band], hi[is_band]])])
 
@@ -140,17 +149,12 @@ def open_bands(min_depth: float) -> np.ndarray:
 
 @lru_cache(maxsize=8)
 def _open_bands_cached(min_depth: float) -> np.ndarray:
-    try:
-        from zsieve.lines import sky_features
-    except ImportError:
+    tab = _sky_table()
+    if tab is None:
         return np.zeros((0, 3))
-    tab = sky_features()
-    depth = np.asarray(tab["strength"], dtype=float)
-    kind = np.array([str(k) for k in tab["kind"]])
-    absorb = np.array(["absorption" in str(s).lower() for s in tab["source"]])
-    sel = (kind == "band") & absorb & (depth >= min_depth) & (depth < OPEN_BAND_MAX_DEPTH)
-    return np.column_stack([np.asarray(tab["wave_lo_vac"], dtype=float)[sel],
-                            np.asarray(tab["wave_hi_vac"], dtype=float)[sel], depth[sel]])
+    lo, hi, depth, _, band = tab
+    sel = band & (depth >= min_depth) & (depth < OPEN_BAND_MAX_DEPTH)
+    return np.column_stack([lo[sel], hi[sel], depth[sel]])
 
 
 def _box_sum(a, half: int):
@@ -490,8 +494,8 @@ def prepare(spec, *, mask_sky: bool = True, extra_masks=(), sky_min_strength: fl
 
     With ``open_bands_to_emission``, the telluric bands shallower than
     :data:`OPEN_BAND_MAX_DEPTH` are masked for the continuum and for all classes but the
-    narrow emission-line galaxies (:meth:`Prepared.for_class`): emission lines there are measured with the noise raised by
-    a correction residual of :data:`BAND_RESIDUAL` x depth x continuum.
+    narrow emission-line galaxies (:meth:`Prepared.for_class`), whose lines are measured there
+    with the noise raised by a correction residual of :data:`BAND_RESIDUAL` x depth x continuum.
     """
     wave = spec.wavelength
     flux = np.where(np.isfinite(spec.flux), spec.flux, 0.0)
