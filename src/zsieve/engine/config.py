@@ -74,7 +74,7 @@ class MeasureConfig:
     extra_masks: tuple = ()
     resolution_kms: float | None = None
     continuum_kms: float = 8000.0
-    penalty: float = 6.0
+    penalty: float = 4.0
     n_candidates: int = 6
     xcorr: bool = True
     bootstrap_xcorr: bool = False

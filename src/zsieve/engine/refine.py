@@ -60,7 +60,7 @@ WIDTH_LIMITS_KMS = {
 #: Allowed scale of the broad lines relative to their typical width in the line list.
 BROAD_SCALE = (0.3, 2.5)
 #: The Gauss-Newton steps of :func:`refine` stop once a step gains less chi-square than this:
-#: far below anything a decision turns on (the penalty per line is 6); a third of the steps
+#: far below anything a decision turns on (the penalty per line group is 4); a third of the steps
 #: gained less than 0.1 when they ran to their cap.
 GN_TOL_CHI2 = 0.05
 #: Half-width of a line's fitting window, in line sigmas.
