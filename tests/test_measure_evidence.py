@@ -6,6 +6,8 @@
   ApJ 681, 831 (from memory); their measured tau_eff at z = 3 is about 0.36-0.40 (from memory).
 * Case-B H-alpha/H-beta = 2.86 (Osterbrock & Ferland 2006, from memory; common practice).
 * Composite quasar broad-line fluxes: Vanden Berk et al. 2001, AJ 122, 549 (from memory).
+* Lyman limit 911.75 A (H I ionisation edge, 13.598 eV; from memory); galaxies at z > 3 are dark
+  below it (the Lyman-break selection, Steidel et al. 1996, ApJ 462, L17; from memory).
 * Birge ratio: chi2 of n values about their weighted mean has mean n - 1 (chi-square
   distribution, common practice).
 """
@@ -18,7 +20,8 @@ import numpy as np
 import pytest
 
 from zsieve.engine.evidence import (BALMER_CASE_B, balmer_test, birge_factor, doublet_delta_chi2,
-                                    companion_test, forest_absent, forest_test, forest_transmission)
+                                    companion_test, forest_absent, forest_test, forest_transmission,
+                                    LYMAN_LIMIT_REST, LYMAN_MIN_EXCESS, lyman_limit_test)
 from zsieve.engine.measure import DOUBLET_DCHI2, MeasureConfig, measure
 from zsieve.engine.prepare import range_mask, sky_ranges
 from zsieve.spectrum import Spectrum
@@ -119,6 +122,60 @@ def test_lone_line_without_forest_is_not_read_as_high_z_lyman_alpha():
     assert not (abs(res.z - (6150.0 / 1215.67 - 1)) < 0.01)
     assert res.grade in ("tentative", "none")
     assert any(r["reason"] == "no Ly-alpha forest" for r in res.extra.get("rejected", []))
+
+
+def test_lyman_limit_rest_wavelength_is_the_hydrogen_ionisation_edge():
+    # lambda = h c / 13.598 eV (H I ionisation energy, from memory; astropy.constants CODATA)
+    from astropy import constants as const
+    from astropy import units as u
+
+    edge = (const.h * const.c / (13.598 * u.eV)).to(u.AA).value
+    assert abs(LYMAN_LIMIT_REST - edge) < 0.1
+
+
+def _blue_galaxy(wave, z, line_A, *, lyman_break: bool):
+    """A faint blue star-forming continuum (f_lambda ~ lambda^-2, common practice for UV
+    slopes) with one emission line at ``line_A``; with ``lyman_break`` the continuum is dark
+    below 911.75(1+z) and forest-absorbed (Faucher-Giguere et al. 2008) up to Ly-alpha."""
+    cont = 0.3 * (wave / 6000.0) ** -2.0
+    if lyman_break:
+        lya = 1215.67 * (1 + z)
+        cont = cont * np.where(wave < LYMAN_LIMIT_REST * (1 + z), 0.0,
+                               np.where(wave < lya, forest_transmission(wave / 1215.67 - 1), 1.0))
+    return cont + _gauss_flux(wave, line_A, 2.0, 25.0)
+
+
+def test_lyman_limit_test_separates_a_lyman_break_from_bare_continuum():
+    rng = np.random.default_rng(4)
+    wave = _grid()
+    z = 6150.0 / 1215.67 - 1  # the line read as Ly-alpha: z = 4.06, limit at 4612 A
+    ivar = np.ones(wave.size)
+    bare = lyman_limit_test(wave, _blue_galaxy(wave, z, 6150.0, lyman_break=False) + rng.normal(0, 1, wave.size), ivar, z)
+    dark = lyman_limit_test(wave, _blue_galaxy(wave, z, 6150.0, lyman_break=True) + rng.normal(0, 1, wave.size), ivar, z)
+    assert bare["excess"] > LYMAN_MIN_EXCESS  # per-pixel S/N < 1, but ~1000 pixels below the limit
+    assert dark["excess"] < 3.0
+    # the limit outside the grid (z = 2.5: 3191 A): no verdict
+    assert lyman_limit_test(wave, np.ones(wave.size), ivar, 2.5) is None
+
+
+def test_light_below_the_lyman_limit_refutes_a_lyman_alpha_reading():
+    # the same lone line at 6150 A: on the bare blue continuum, whose red side is too faint for
+    # the forest test to decide, Ly-alpha at z = 4.06 is refuted by the light below its Lyman
+    # limit; with the Lyman break and the forest in place the Ly-alpha reading stays a candidate
+    wave = _grid()
+    z_lya = 6150.0 / 1215.67 - 1
+    out = {}
+    for brk in (False, True):
+        rng = np.random.default_rng(4)
+        f = _blue_galaxy(wave, z_lya, 6150.0, lyman_break=brk) + rng.normal(0, 1, wave.size)
+        out[brk] = measure(Spectrum(wave, f, np.ones(wave.size)), MeasureConfig(n_resamples=20, seed=1))
+    rejected = [r for r in out[False].extra.get("rejected", []) if abs(r["z"] - z_lya) < 0.01]
+    assert any(r["reason"] == "light below the Lyman limit" for r in rejected)
+    assert not any(abs(c.z - z_lya) < 0.01 for c in out[False].candidates)
+    assert any(abs(c.z - z_lya) < 0.01 and "Ly-alpha" in c.lines for c in out[True].candidates)
+    assert not any(r["reason"] == "light below the Lyman limit" for r in out[True].extra.get("rejected", []))
+    # a lone line stays ambiguous either way (design: say so rather than guess)
+    assert out[False].grade in ("tentative", "none") and out[True].grade in ("tentative", "none")
 
 
 def _measured_lone_oii(wave, z, total, sig, rng):

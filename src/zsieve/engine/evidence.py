@@ -13,6 +13,11 @@ break"):
   by the mean intergalactic transmission (Faucher-Giguere et al. 2008, ApJ 681, 831:
   tau_eff = 0.0018 (1+z)^3.92; from memory). A forest that is *absent* where those pixels are
   observed is evidence against the Ly-alpha reading.
+* :func:`lyman_limit_test` -- a galaxy read with Ly-alpha at z > 2.9 leaves almost no flux
+  below its Lyman limit, 911.75(1+z) A: its own neutral gas and the intergalactic Lyman-limit
+  systems absorb it (the Lyman-break selection of distant galaxies, Steidel et al. 1996,
+  ApJ 462, L17; from memory). Flux there well above a small leak of the continuum redward of
+  Ly-alpha is evidence against the reading.
 * :func:`balmer_test` -- a line read as H-beta implies H-alpha at least 2.86 times as strong
   (case B recombination, T = 10^4 K; Osterbrock & Ferland 2006, from memory; dust only raises
   the ratio). H-alpha missing where its pixels are observed is evidence against H-beta.
@@ -51,7 +56,7 @@ import numpy as np
 from .prepare import C_KMS
 
 __all__ = ["OII_DOUBLET", "fixed_line_flux", "balmer_test", "BALMER_CASE_B", "doublet_delta_chi2", "forest_transmission", "forest_test", "forest_absent",
-           "birge_factor", "companion_test", "COMPANION_ALLOWANCE",
+           "birge_factor", "companion_test", "lyman_limit_test", "LYMAN_LIMIT_REST", "LYMAN_LEAK_MAX", "LYMAN_MIN_EXCESS", "COMPANION_ALLOWANCE",
            "LYA_REST", "FOREST_REST", "FOREST_RED_REST", "sideband_test", "ratio_floor_test", "CA_HK_FLOOR"]
 
 #: [O II] 3727.09 / 3729.88 vacuum rest wavelengths (NIST ASD; as in linelists/galaxy_emission.ecsv).
@@ -64,6 +69,18 @@ LYA_REST = 1215.67
 FOREST_REST = (1050.0, 1180.0)
 #: Rest range redward of Ly-alpha used as the unabsorbed reference (clear of N V 1240 and Si II).
 FOREST_RED_REST = (1270.0, 1380.0)
+#: Rest wavelength of the Lyman limit, the ionisation edge of H I (13.598 eV; from memory).
+LYMAN_LIMIT_REST = 911.75
+#: Largest flux below the Lyman limit of a galaxy as a fraction of its continuum at rest
+#: 1270-1380 A. Escape fractions of ionising light measured for star-forming galaxies at z ~ 3
+#: are ~0.05-0.1 before the intergalactic absorption, which removes more (from memory); a
+#: blue UV slope raises the intrinsic ratio by at most ~1.5 (f_lambda ~ lambda^-2.5). 0.2 is
+#: lenient on both.
+LYMAN_LEAK_MAX = 0.2
+#: Least ``excess`` of :func:`lyman_limit_test` that refutes a reading: above the 3 of the other
+#: tests, since a small error in sky subtraction, summed over the ~1000 pixels below the limit,
+#: can lift their mean by a few of its (small) errors.
+LYMAN_MIN_EXCESS = 5.0
 
 
 def _gauss(x, mu, s):
@@ -219,6 +236,42 @@ def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
                 excess=float((ratio - allowance * expected) / err),
                 rough_blue=rb, rough_red=rr, rough_excess=float((rb - rr) / rough_err),
                 rough_floor=float(floor), rough_deficit=float((floor - rb) / floor_err))
+
+
+def lyman_limit_test(wave, flux, ivar, z, *, leak: float = LYMAN_LEAK_MAX, min_pixels: int = 50) -> dict | None:
+    """Flux below the Lyman limit of a galaxy whose Ly-alpha is at ``z``.
+
+    Compares the inverse-variance weighted mean flux of the pixels below rest 0.99 x 911.75 A
+    (``blue``, ``blue_err``) with ``leak`` times a high estimate of the continuum at rest
+    1270-1380 A (its weighted mean plus three errors, never below zero: a red side too faint
+    to measure still bounds the leak). ``excess`` = (blue - leak x red_high) / blue_err;
+    above 3 the reading leaves light that its Lyman limit would have absorbed. None when fewer
+    than ``min_pixels`` usable pixels lie on either side.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> wave = np.arange(3600.0, 9800.0, 1.0)
+    >>> flat = np.ones(wave.size)
+    >>> rng = np.random.default_rng(2)
+    >>> noisy = flat + rng.normal(0.0, 2.0, wave.size)       # per-pixel S/N 0.5
+    >>> lyman_limit_test(wave, noisy, np.full(wave.size, 0.25), 4.3)["excess"] > 10
+    True
+    >>> dropped = np.where(wave < 911.75 * 5.3, 0.0, 1.0) + rng.normal(0.0, 2.0, wave.size)
+    >>> lyman_limit_test(wave, dropped, np.full(wave.size, 0.25), 4.3)["excess"] < 3
+    True
+    """
+    wave = np.asarray(wave, float)
+    a = 1.0 + z
+    blue = (wave < 0.99 * LYMAN_LIMIT_REST * a) & (ivar > 0)
+    red = (wave > FOREST_RED_REST[0] * a) & (wave < FOREST_RED_REST[1] * a) & (ivar > 0)
+    if blue.sum() < min_pixels or red.sum() < min_pixels:
+        return None
+    (mb, eb), (mr, er) = ((float(np.sum(ivar[s] * flux[s]) / np.sum(ivar[s])), float(1.0 / math.sqrt(np.sum(ivar[s]))))
+                          for s in (blue, red))
+    red_high = max(mr, 0.0) + 3.0 * er
+    return dict(blue=mb, blue_err=eb, red=mr, red_err=er, leak=float(leak),
+                excess=float((mb - leak * red_high) / eb))
 
 
 def _roughness(wave, flux, ivar, lo, hi) -> tuple[float, int, float]:

@@ -40,7 +40,7 @@ from .bootstrap import bootstrap, robust_sigma
 from .config import MeasureConfig
 from .detect import detect_features
 from .evidence import (COMPANION_ALLOWANCE, LYA_REST, balmer_test, birge_factor, companion_test, doublet_delta_chi2,
-                       forest_absent, forest_test, ratio_floor_test, sideband_test, CA_HK_FLOOR)
+                       forest_absent, forest_test, lyman_limit_test, LYMAN_MIN_EXCESS, ratio_floor_test, sideband_test, CA_HK_FLOOR)
 from .grade import decide_grade
 from .identify import Seed, build_linesets, dedupe, propose
 from .prepare import C_KMS, LoglamMap, flux_scale, prepare, range_mask, sky_ranges
@@ -687,7 +687,8 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
     """The record of why reading ``f`` is refuted (each test's statistic above
     ``max_excess``), or None: Ly-alpha (or any quasar reading) at z > 2 whose forest is
     absent (:func:`forest_absent`: neither its depressed mean nor its roughness, or smoother
-    than any forest); emission-galaxy
+    than any forest); emission-galaxy readings with Ly-alpha that leave light below their
+    Lyman limit (:func:`lyman_limit_test`); emission-galaxy
     readings with H-beta but no fitted H-alpha where case-B recombination requires one
     (:func:`balmer_test`); absorption-galaxy readings with Ca II K but Ca II H below half of it
     (``CA_HK_FLOOR``); star readings with H8 or H-delta but H-gamma below half of it
@@ -733,6 +734,12 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
         t = forest_test(prep.wave, prep.flux, prep.ivar, f.z)
         if forest_absent(t, max_excess):
             return dict(z=float(f.z), template=f.cls, reason="no Ly-alpha forest", **t)
+    # a galaxy's own gas and the intergalactic Lyman-limit systems leave next to no light below
+    # its Lyman limit (not so for every quasar, whose light can ionise its way out)
+    if f.cls == "emission-galaxy" and "Ly-alpha" in names:
+        t = lyman_limit_test(prep.wave, prep.flux, prep.ivar, f.z)
+        if t is not None and t["excess"] > max(max_excess, LYMAN_MIN_EXCESS):
+            return dict(z=float(f.z), template=f.cls, reason="light below the Lyman limit", **t)
     if f.cls == "quasar":
         t = _broad_companions(f, prep)
         if t is not None and t["deficit"] > max_excess:
