@@ -184,6 +184,12 @@ def forest_transmission(z) -> np.ndarray | float:
 FOREST_ROUGH_MIN = 0.15
 
 
+def _weighted_mean(flux, ivar, sel) -> tuple[float, float]:
+    """Inverse-variance weighted mean of ``flux[sel]`` and its error."""
+    w = ivar[sel]
+    return float(np.sum(w * flux[sel]) / np.sum(w)), float(1.0 / math.sqrt(np.sum(w)))
+
+
 def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
     """Compare the mean flux of rest 1050-1180 A with that of rest 1270-1380 A for Ly-alpha at ``z``,
     and the pixel-to-pixel roughness of the two ranges.
@@ -216,8 +222,7 @@ def forest_test(wave, flux, ivar, z, *, min_pixels: int = 20) -> dict | None:
         sel = (wave > lo * a) & (wave < hi * a) & (ivar > 0)
         if sel.sum() < min_pixels:
             return None
-        w = ivar[sel]
-        out[key] = (float(np.sum(w * flux[sel]) / np.sum(w)), float(1.0 / math.sqrt(np.sum(w))))
+        out[key] = _weighted_mean(flux, ivar, sel)
     (mb, eb), (mr, er) = out["blue"], out["red"]
     if mr <= 3.0 * er:  # no measurable continuum redward: nothing to normalise by
         return None
@@ -245,7 +250,7 @@ def lyman_limit_test(wave, flux, ivar, z, *, leak: float = LYMAN_LEAK_MAX, min_p
     (``blue``, ``blue_err``) with ``leak`` times a high estimate of the continuum at rest
     1270-1380 A (its weighted mean plus three errors, never below zero: a red side too faint
     to measure still bounds the leak). ``excess`` = (blue - leak x red_high) / blue_err;
-    above 3 the reading leaves light that its Lyman limit would have absorbed. None when fewer
+    above ``LYMAN_MIN_EXCESS`` the reading leaves light that its Lyman limit would have absorbed. None when fewer
     than ``min_pixels`` usable pixels lie on either side.
 
     Examples
@@ -267,8 +272,7 @@ def lyman_limit_test(wave, flux, ivar, z, *, leak: float = LYMAN_LEAK_MAX, min_p
     red = (wave > FOREST_RED_REST[0] * a) & (wave < FOREST_RED_REST[1] * a) & (ivar > 0)
     if blue.sum() < min_pixels or red.sum() < min_pixels:
         return None
-    (mb, eb), (mr, er) = ((float(np.sum(ivar[s] * flux[s]) / np.sum(ivar[s])), float(1.0 / math.sqrt(np.sum(ivar[s]))))
-                          for s in (blue, red))
+    (mb, eb), (mr, er) = (_weighted_mean(flux, ivar, s) for s in (blue, red))
     red_high = max(mr, 0.0) + 3.0 * er
     return dict(blue=mb, blue_err=eb, red=mr, red_err=er, leak=float(leak),
                 excess=float((mb - leak * red_high) / eb))
