@@ -250,8 +250,8 @@ def lyman_limit_test(wave, flux, ivar, z, *, leak: float = LYMAN_LEAK_MAX, min_p
     (``blue``, ``blue_err``) with ``leak`` times a high estimate of the continuum at rest
     1270-1380 A (its weighted mean plus three errors, never below zero: a red side too faint
     to measure still bounds the leak). ``excess`` = (blue - leak x red_high) / blue_err;
-    above ``LYMAN_MIN_EXCESS`` the reading leaves light that its Lyman limit would have absorbed. None when fewer
-    than ``min_pixels`` usable pixels lie on either side.
+    above ``LYMAN_MIN_EXCESS`` the reading leaves light that its Lyman limit would have
+    absorbed. None when fewer than ``min_pixels`` usable pixels lie on either side.
 
     Examples
     --------
