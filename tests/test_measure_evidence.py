@@ -65,6 +65,31 @@ def test_single_gaussian_is_not_taken_for_a_doublet():
     assert hits == 0
 
 
+def test_absorbed_lyman_alpha_line_is_not_taken_for_a_doublet():
+    # Ly-alpha of a distant galaxy: intergalactic H I absorbers sit on its blue half (narrow,
+    # b ~ 30 km/s) and the forest lowers the continuum blueward (common practice: the
+    # asymmetric Ly-alpha profiles of high-z emitters). An absorber just blueward of the
+    # peak splits the line into two humps, which a free-ratio doublet fits better than one
+    # Gaussian; the cut-line alternative must take it back below the threshold.
+    rng = np.random.default_rng(8)
+    wave = _grid()
+    z = 3.5
+    centre = 1215.67 * (1 + z)
+    blue = wave < centre
+    v = (wave / centre - 1.0) * C_KMS
+    trans = np.where(blue, np.exp(-3.0 * np.exp(-0.5 * ((v + 60.0) / 30.0) ** 2)), 1.0)
+    cont = np.where(blue, 0.7, 1.0)
+    sigma_A = centre * math.hypot(100.0, 64.0) / C_KMS
+    hits_gauss = hits_cut = 0
+    for k in range(10):
+        f = (cont + _gauss_flux(wave, centre, sigma_A, 150.0)) * trans + rng.normal(0, 1.0, wave.size)
+        args = (wave, f, np.ones(wave.size), centre)
+        hits_gauss += doublet_delta_chi2(*args, sigma_inst_kms=64.0, lya_cut=False) >= DOUBLET_DCHI2
+        hits_cut += doublet_delta_chi2(*args, sigma_inst_kms=64.0) >= DOUBLET_DCHI2
+    assert hits_gauss >= 5  # the symmetric alternative alone is fooled
+    assert hits_cut == 0
+
+
 def test_forest_transmission_matches_published_tau_eff_at_z3():
     # Faucher-Giguere et al. 2008: tau_eff(z=3) ~ 0.36-0.40 measured (from memory)
     tau = -math.log(float(forest_transmission(3.0)))

@@ -486,8 +486,11 @@ def _second_feature_snr(profiles, inside, centres, sigma_v, blend: float = 2.5) 
 
 
 # ----------------------------------------------------------------------- sky and forest
-def _forest_transmission(rng, wave, z):
-    """Ly-alpha forest (and a Lyman-limit drop) in the observed frame; 1 redward of Ly-alpha."""
+def _forest_transmission(rng, wave, z, lyman_leak=None):
+    """Ly-alpha forest (and a Lyman-limit drop) in the observed frame; 1 redward of Ly-alpha.
+
+    Below the Lyman limit the transmission is multiplied by ``lyman_leak`` if given, else by
+    exp(-tau) with tau uniform in 0.5-3 (a quasar's own light ionises its surroundings)."""
     trans = np.ones_like(wave)
     lya_obs = _LYA * (1.0 + z)
     region = wave < lya_obs
@@ -522,7 +525,8 @@ def _forest_transmission(rng, wave, z):
     trans = np.where(region, np.exp(-scale * shape), 1.0)
     # Ly-beta forest and the Lyman limit make the far blue side darker still
     trans = np.where(wave < 1025.72 * (1 + z), trans * 0.7, trans)
-    trans = np.where(wave < _LYLIMIT * (1 + z), trans * math.exp(-rng.uniform(0.5, 3.0)), trans)
+    leak = math.exp(-rng.uniform(0.5, 3.0)) if lyman_leak is None else float(lyman_leak)
+    trans = np.where(wave < _LYLIMIT * (1 + z), trans * leak, trans)
     return trans, float(np.mean(trans[region]))
 
 
@@ -665,6 +669,10 @@ def mock_spectrum(
         params["forest_mean_transmission"] = mean_t
     elif kind == "single-line":
         continuum, ln, params = _single_line(rng, resolution, wave[0], wave[-1], z, line)
+        if params["line"] == "Ly-alpha":  # a Ly-alpha emitter: forest and Lyman break too
+            forest, mean_t = _forest_transmission(rng, wave, z, lyman_leak=rng.uniform(0.0, 0.1))
+            trans = trans * forest
+            params["forest_mean_transmission"] = mean_t
     else:  # noise: a featureless level, scaled below so that its median S/N is snr
         s = rng.uniform(-0.5, 0.5) if slope is None else float(slope)
         x0, span = float(np.median(wave)), float(wave[-1] - wave[0])

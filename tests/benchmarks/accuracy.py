@@ -165,9 +165,9 @@ def _doublet_one(args):
 
 
 def doublet_study(n, seed, workers):
-    """Chi-square gain of the [O II] doublet shape over one Gaussian, on the mocks where the engine
+    """Chi-square gain of the [O II] doublet shape over one line, on the mocks where the engine
     reads a lone [O II]: emission galaxies at z = 0.95-1.5 (only [O II] in the grid), lone lines
-    (one Gaussian: Ly-alpha, H-beta, [O III] 5008, H-alpha) and pure noise. The threshold
+    (Ly-alpha with its forest, H-beta, [O III] 5008, H-alpha) and pure noise. The threshold
     DOUBLET_DCHI2 of zsieve.engine.measure is set from this table."""
     from zsieve.simulate import mock_set
 
@@ -185,7 +185,7 @@ def doublet_study(n, seed, workers):
               f"{r['grade']:9s} {d}")
     null = np.array([r["null"] for r in rows if r["kind"] == "single-line"])
     if null.size:
-        print(f"statistic at the true line of {null.size} lone lines (one Gaussian): median "
+        print(f"statistic at the true line of {null.size} lone lines: median "
               f"{np.median(null):.1f}, 99% point {np.percentile(null, 99):.1f}, maximum {null.max():.1f}")
     for thr in (9.0, 12.0, 16.0, 25.0, 36.0, 49.0):
         ok = [r for r in rows if r["dchi2"] and max(r["dchi2"].values()) >= thr]
