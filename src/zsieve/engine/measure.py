@@ -736,9 +736,9 @@ def _refutation(f, prep, sig_inst, max_excess: float = 3.0) -> dict | None:
             return dict(z=float(f.z), template=f.cls, reason="lines on a continuum step or hump", **t)
     # the intergalactic forest absorbs blueward of Ly-alpha in front of any source at z > 2:
     # tested where the fit uses Ly-alpha, and for every quasar reading (whose fit may have
-    # put N V, or no line at all, where Ly-alpha should be)
-    # a galaxy's own gas and the intergalactic Lyman-limit systems leave next to no light below
-    # its Lyman limit (not so for every quasar, whose light can ionise its way out)
+    # put N V, or no line at all, where Ly-alpha should be); a galaxy's own gas and the
+    # intergalactic Lyman-limit systems leave next to no light below its Lyman limit (not so
+    # for every quasar, whose light can ionise its way out)
     why = _lya_refuted(prep, f.z, max_excess, forest=f.z > 2.0 and ("Ly-alpha" in names or f.cls == "quasar"),
                        lyman=f.cls == "emission-galaxy" and "Ly-alpha" in names)
     if why is not None:
